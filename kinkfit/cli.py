@@ -1,0 +1,128 @@
+"""Command-line interface: ``kinkfit <command> ...``.
+
+A thin layer: parse arguments, call the library function that does the work,
+map :class:`kinkfit.errors.KinkfitError` to a one-line message and an exit
+status (2 bad input, 1 failed run).  Every command is also a documented Python
+function, named in its handler below.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+
+from . import __version__
+from .errors import KinkfitError
+
+__all__ = ["main", "build_parser"]
+
+log = logging.getLogger("kinkfit")
+
+
+# --------------------------------------------------------------------------
+# handlers: one per command, each a few lines calling library code
+# --------------------------------------------------------------------------
+
+def _cmd_inspect(args) -> int:
+    from .cube import describe_cube, read_cube
+    cube = read_cube(args.cube)
+    print(describe_cube(cube, as_json=args.json))
+    return 0
+
+
+def _cmd_synth(args) -> int:
+    from .config import load_config
+    from .synth import synth_from_config
+    cfg = load_config(args.config)
+    path = synth_from_config(cfg, output=args.output, overwrite=args.force)
+    print(f"wrote {path}")
+    return 0
+
+
+def _cmd_montage(args) -> int:
+    from .plots import save_channel_montage
+    path = save_channel_montage(args.cube, output=args.output,
+                                ncols=args.columns, nchan=args.channels)
+    print(f"wrote {path}")
+    return 0
+
+
+def _cmd_not_ready(args) -> int:
+    raise KinkfitError(f"command '{args.command}' is not available in this "
+                       f"version of kinkfit")
+
+
+# --------------------------------------------------------------------------
+# parser
+# --------------------------------------------------------------------------
+
+def build_parser() -> argparse.ArgumentParser:
+    """Build the argument parser (exposed for documentation and tests)."""
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("-v", "--verbose", action="count", default=0,
+                        help="more log output (repeat for debug)")
+
+    parser = argparse.ArgumentParser(
+        prog="kinkfit",
+        description="Planet posteriors from kinks in protoplanetary-disk "
+                    "line cubes.")
+    parser.add_argument("--version", action="version",
+                        version=f"kinkfit {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    p = sub.add_parser("inspect", parents=[common],
+                       help="show what the reader understands of a FITS cube")
+    p.add_argument("cube", help="FITS spectral cube")
+    p.add_argument("--json", action="store_true",
+                   help="machine-readable output")
+    p.set_defaults(handler=_cmd_inspect)
+
+    p = sub.add_parser("synth", parents=[common],
+                       help="write a synthetic cube from a config's [synth] "
+                            "section")
+    p.add_argument("config", help="TOML config")
+    p.add_argument("-o", "--output", default=None,
+                   help="output FITS path (default: the config's data.cube)")
+    p.add_argument("--force", action="store_true",
+                   help="overwrite an existing file")
+    p.set_defaults(handler=_cmd_synth)
+
+    p = sub.add_parser("montage", parents=[common],
+                       help="draw a cube's channel maps as one PNG")
+    p.add_argument("cube", help="FITS spectral cube")
+    p.add_argument("-o", "--output", default=None,
+                   help="PNG path (default: next to the cube)")
+    p.add_argument("--columns", type=int, default=6,
+                   help="panels per row (default 6)")
+    p.add_argument("--channels", type=int, default=24,
+                   help="number of channels shown, evenly spaced (default 24)")
+    p.set_defaults(handler=_cmd_montage)
+
+    return parser
+
+
+def _configure_logging(verbosity: int) -> None:
+    level = logging.WARNING - 10 * min(verbosity, 2)
+    logging.basicConfig(level=level, format="kinkfit: %(levelname)s: %(message)s")
+
+
+def main(argv=None) -> int:
+    """Run the CLI; returns the exit status (also used by the entry point)."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    _configure_logging(getattr(args, "verbose", 0))
+    try:
+        return int(args.handler(args) or 0)
+    except KinkfitError as exc:
+        print(f"kinkfit: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("kinkfit: interrupted; partial results are kept where the "
+              "command writes checkpoints", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
