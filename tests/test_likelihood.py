@@ -1,0 +1,171 @@
+"""Tests of kinkfit.likelihood against scipy.stats densities."""
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from kinkfit.errors import KinkfitError, PhysicsRangeError
+from kinkfit.likelihood import KinkLikelihood, null_model
+from kinkfit.params import parameters_for
+from kinkfit.priors import LogUniform
+
+from standin import TRUTH, standin_data, standin_model, standin_params
+
+
+def _lik(rng, **kw):
+    d = standin_data(rng)
+    ps = standin_params()
+    return KinkLikelihood(model=standin_model, param_set=ps, **d, **kw), d, ps
+
+
+def _theta(ps, n, rng):
+    return ps.sample_prior(rng, n)
+
+
+def _expected_offsets(d, theta, ps):
+    p = ps.unpack(theta)
+    dv_r, dv_phi = standin_model(p, d["r_au"], d["phi_rad"])
+    return -(d["a_r"] * dv_r + d["a_phi"] * dv_phi) / d["grad_kms_per_arcsec"]
+
+
+def test_gaussian_equals_scipy_norm(rng):
+    lik, d, ps = _lik(rng)
+    theta = _theta(ps, 7, rng)
+    got = lik.log_likelihood(theta)
+    pred = _expected_offsets(d, theta, ps)
+    jit = ps.unpack(theta)["jitter"]
+    scale = np.sqrt(d["sigma_arcsec"][None] ** 2 + jit[:, None] ** 2)
+    # oracle: scipy.stats.norm.logpdf summed over independent points
+    want = stats.norm.logpdf(d["offset_arcsec"][None], loc=pred,
+                             scale=scale).sum(axis=1)
+    np.testing.assert_allclose(got, want, rtol=1e-12)
+    # pointwise rows sum to the total
+    np.testing.assert_allclose(lik.pointwise(theta).sum(axis=1), got,
+                               rtol=1e-12)
+
+
+@pytest.mark.parametrize("dof", [1.0, 4.0, 30.0])
+def test_student_t_equals_scipy_t(rng, dof):
+    lik, d, ps = _lik(rng, kind="student-t", dof=dof)
+    theta = _theta(ps, 5, rng)
+    pred = _expected_offsets(d, theta, ps)
+    jit = ps.unpack(theta)["jitter"]
+    scale = np.sqrt(d["sigma_arcsec"][None] ** 2 + jit[:, None] ** 2)
+    # oracle: scipy.stats.t.logpdf with scale sqrt(sigma^2 + s^2)
+    want = stats.t.logpdf(d["offset_arcsec"][None], dof, loc=pred,
+                          scale=scale)
+    np.testing.assert_allclose(lik.pointwise(theta), want, rtol=1e-10)
+
+
+def test_log_prob_is_prior_plus_likelihood(rng):
+    lik, d, ps = _lik(rng)
+    theta = _theta(ps, 6, rng)
+    # oracle: the priors' own log densities (kinkfit.priors, checked in
+    # test_config) plus the scipy-checked likelihood
+    np.testing.assert_allclose(lik.log_prob(theta),
+                               ps.log_prior(theta) + lik.log_likelihood(theta),
+                               rtol=1e-12)
+
+
+def test_vectorised_equals_loop(rng):
+    lik, d, ps = _lik(rng)
+    theta = _theta(ps, 16, rng)
+    batch = lik.log_prob(theta)
+    loop = np.array([lik.log_prob(t[None])[0] for t in theta])
+    # self-consistency: a batch equals walker-by-walker evaluation
+    np.testing.assert_allclose(batch, loop, rtol=0, atol=1e-9)
+
+
+def test_never_nan_inside_prior(rng):
+    lik, d, ps = _lik(rng)
+    theta = _theta(ps, 2000, rng)
+    lp = lik.log_prob(theta)
+    assert not np.any(np.isnan(lp))
+    assert np.all(np.isfinite(lp))
+    assert lik.counters["evaluated"] == 2000
+    assert sum(v for k, v in lik.counters.items() if k != "evaluated") == 0
+
+
+def test_outside_prior_is_counted_minus_inf(rng):
+    lik, d, ps = _lik(rng)
+    theta = _theta(ps, 4, rng)
+    theta[0, ps.free.index("mass")] = 50.0      # above log-uniform(0.1, 10)
+    theta[2, ps.free.index("jitter")] = -1.0    # negative jitter
+    lp = lik.log_prob(theta)
+    assert np.isneginf(lp[0]) and np.isneginf(lp[2])
+    assert np.all(np.isfinite(lp[[1, 3]]))
+    assert lik.counters["out_of_prior"] == 2
+    assert lik.counters["evaluated"] == 4
+    lik.reset_counters()
+    assert lik.counters["out_of_prior"] == 0
+
+
+def test_model_failures_are_counted(rng):
+    d = standin_data(rng)
+    ps = standin_params()
+
+    def model(params, r, phi):
+        dv_r, dv_phi = standin_model(params, r, phi)
+        dv_r[params["mass"] > 5.0] = np.nan          # non-finite output
+        if np.any(params["radius"] > 190.0):         # range error
+            raise PhysicsRangeError("radius beyond model table")
+        return dv_r, dv_phi
+
+    lik = KinkLikelihood(model=model, param_set=ps, **d)
+    theta = ps.pack({"mass": [1.0, 6.0, 1.0, 2.0],
+                     "radius": [100.0, 100.0, 195.0, 150.0],
+                     "azimuth": [0.0, 0.0, 0.0, 0.0],
+                     "jitter": [0.01] * 4})
+    lp = lik.log_prob(theta)
+    assert np.all(np.isfinite(lp[[0, 3]]))
+    assert np.isneginf(lp[1]) and np.isneginf(lp[2])
+    assert lik.counters["non_finite_model"] == 1
+    assert lik.counters["model_range"] == 1
+    assert not np.any(np.isnan(lik.pointwise(theta)))
+
+
+def test_baseline_is_zero_model(rng):
+    d = standin_data(rng)
+    ps0 = parameters_for("none", {"jitter": LogUniform(1e-3, 0.1)},
+                         with_planet=False)
+    assert ps0.free == ("jitter",)
+    lik0 = KinkLikelihood(model=None, param_set=ps0, **d)
+    assert lik0.is_baseline
+    theta = np.array([[0.01], [0.05]])
+    scale = np.sqrt(d["sigma_arcsec"][None] ** 2 + theta ** 2)
+    # oracle: scipy.stats.norm.logpdf with zero model displacement
+    want = stats.norm.logpdf(d["offset_arcsec"][None], 0.0, scale).sum(1)
+    np.testing.assert_allclose(lik0.log_likelihood(theta), want, rtol=1e-12)
+    z = null_model({"jitter": np.ones(3)}, d["r_au"], d["phi_rad"])
+    assert z[0].shape == (3, d["r_au"].size) and not z[0].any()
+
+
+def test_truth_beats_no_planet(rng):
+    # a planet signal of ~0.1 km/s / 4 km/s/arcsec = 0.025" vs sigma 0.01":
+    # the injected truth must be far more likely than zero mass
+    lik, d, ps = _lik(rng)
+    t = ps.pack(TRUTH)
+    t_small = ps.pack({**TRUTH, "mass": 0.1})
+    assert lik.log_likelihood(t)[0] > lik.log_likelihood(t_small)[0] + 20
+
+
+def test_bad_inputs_raise_kinkfit_errors(rng):
+    d = standin_data(rng)
+    ps = standin_params()
+    bad = dict(d, sigma_arcsec=np.zeros_like(d["sigma_arcsec"]))
+    with pytest.raises(KinkfitError, match="sigma_arcsec"):
+        KinkLikelihood(model=standin_model, param_set=ps, **bad)
+    bad = dict(d, offset_arcsec=d["offset_arcsec"][:-1])
+    with pytest.raises(KinkfitError, match="offset_arcsec"):
+        KinkLikelihood(model=standin_model, param_set=ps, **bad)
+    with pytest.raises(KinkfitError, match="likelihood.kind"):
+        KinkLikelihood(model=standin_model, param_set=ps, kind="cauchy", **d)
+
+
+def test_inputs_not_modified(rng):
+    d = standin_data(rng)
+    copy = {k: v.copy() for k, v in d.items()}
+    lik = KinkLikelihood(model=standin_model, param_set=standin_params(), **d)
+    lik.log_prob(standin_params().sample_prior(rng, 3))
+    for k in d:
+        np.testing.assert_array_equal(d[k], copy[k])
