@@ -295,7 +295,12 @@ def _finite_float(hdr, key, path, default=None, required=True):
             raise InputFileError(f"{path}: header keyword {key} is missing",
                                  file=path, key=key)
         return default
-    val = hdr[key]
+    try:
+        val = hdr[key]
+    except Exception:  # astropy VerifyError on an unparsable card (e.g. NAN)
+        raise InputFileError(f"{path}: header card {key} is unparsable "
+                             f"({str(hdr.cards[key].image).strip()!r})", file=path,
+                             key=key) from None
     try:
         f = float(val)
     except (TypeError, ValueError):
@@ -449,9 +454,25 @@ def read_cube(path, *, centre=None, line_free=None) -> Cube:
         For an invalid ``centre`` or ``line_free`` argument.
     """
     path = Path(path)
+    from astropy.io.fits.verify import VerifyError
     hdul = _open_hdul(path)
     try:
-        return _read_from_hdul(hdul, path, centre, line_free)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            cube = _read_from_hdul(hdul, path, centre, line_free)
+        for w in caught:
+            log.debug("%s: %s", path, " ".join(str(w.message).split()))
+        return cube
+    except (InputFileError, ConfigError):
+        raise
+    except VerifyError as exc:
+        raise InputFileError(f"{path}: malformed header ({' '.join(str(exc).split())})",
+                             file=path) from None
+    except Exception as exc:  # last resort: a user file must never give a traceback
+        log.debug("unexpected error reading %s", path, exc_info=True)
+        raise InputFileError(f"{path}: could not be read as a spectral cube "
+                             f"({type(exc).__name__}: {' '.join(str(exc).split())})",
+                             file=path) from None
     finally:
         hdul.close()
 
@@ -616,7 +637,6 @@ def _read_from_hdul(hdul, path, centre, line_free):
         warnings.simplefilter("always")
         try:
             wcs = WCS(hdr, naxis=naxis, fix=True)
-            cel = wcs.celestial
         except Exception as exc:
             raise InputFileError(f"{path}: invalid WCS header ({' '.join(str(exc).split())})",
                                  file=path) from None
@@ -633,21 +653,26 @@ def _read_from_hdul(hdul, path, centre, line_free):
             raise InputFileError(f"{path}: {key} = 0 (zero pixel size)", file=path,
                                  key=key, value=0.0)
     nx, ny = shape_fits[ilng], shape_fits[ilat]
-    # pixel indices of the celestial sub-WCS follow the order of lng/lat in the header
-    lng_first = ilng < ilat
 
     def cel_world(ix, iy):
-        ix = np.asarray(ix, dtype=float)
-        iy = np.asarray(iy, dtype=float)
-        a, b = (ix, iy) if lng_first else (iy, ix)
+        """World (lon, lat) in deg of 0-based pixels (ix, iy); other axes at pixel 0."""
+        ix = np.atleast_1d(np.asarray(ix, dtype=float))
+        iy = np.atleast_1d(np.asarray(iy, dtype=float))
+        pixcrd = np.zeros((ix.size, naxis))
+        pixcrd[:, ilng] = ix
+        pixcrd[:, ilat] = iy
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            lon, latv = cel.wcs_pix2world(a, b, 0)
-        return np.asarray(lon, dtype=float), np.asarray(latv, dtype=float)
+            try:
+                world = wcs.wcs_pix2world(pixcrd, 0)
+            except Exception as exc:
+                raise InputFileError(f"{path}: celestial WCS cannot be evaluated "
+                                     f"({' '.join(str(exc).split())})", file=path) from None
+        return world[:, ilng].astype(float), world[:, ilat].astype(float)
 
     if centre is None:
         ra0, dec0 = cel_world(nx // 2, ny // 2)
-        ra0, dec0 = float(ra0), float(dec0)
+        ra0, dec0 = float(ra0[0]), float(dec0[0])
     else:
         try:
             ra0, dec0 = (float(centre[0]), float(centre[1]))
