@@ -103,7 +103,7 @@ class EmittingSurface:
 
     Examples
     --------
-    >>> EmittingSurface(0.3, 1.25).height_au(100.0)
+    >>> round(float(EmittingSurface(0.3, 1.25).height_au(100.0)), 6)
     30.0
     """
 
@@ -420,15 +420,44 @@ def _solve_height(surf: EmittingSurface, X, Yflat, tan_i, side):
     hi = np.full(todo.size, np.nan)
     found = np.zeros(todo.size, dtype=bool)
     prev = np.zeros(todo.size)
-    for g in _SCAN:
+    best = -h0[todo]                      # largest sampled G and its index
+    best_j = np.zeros(todo.size, dtype=int)
+    for j, g in enumerate(_SCAN, start=1):
         w = scale * g
-        newly = (~found) & (G(w, Xs, Ys) > 0.0)
+        gw = G(w, Xs, Ys)
+        newly = (~found) & (gw > 0.0)
         lo[newly] = prev[newly]
         hi[newly] = w[newly]
         found |= newly
         if found.all():
             break
+        better = gw > best
+        best = np.where(better, gw, best)
+        best_j = np.where(better, j, best_j)
         prev = w
+    # rays that graze the layer (two roots inside one scan cell, next to a
+    # fold): maximise G around the best sample by golden-section search
+    miss = np.flatnonzero(~found & (best > -0.05 * scale))
+    if miss.size:
+        grid = np.concatenate([[0.0], _SCAN])
+        jj = best_j[miss]
+        sc = scale[miss]
+        a = sc * grid[np.maximum(jj - 1, 0)]
+        b = sc * grid[np.minimum(jj + 1, grid.size - 1)]
+        Xm, Ym = Xs[miss], Ys[miss]
+        ratio = (math.sqrt(5.0) - 1.0) / 2.0
+        for _ in range(_BISECTIONS):
+            c = b - ratio * (b - a)
+            d = a + ratio * (b - a)
+            left = G(c, Xm, Ym) > G(d, Xm, Ym)
+            b = np.where(left, d, b)
+            a = np.where(left, a, c)
+        wmax = 0.5 * (a + b)
+        pos = G(wmax, Xm, Ym) > 0.0
+        sel = miss[pos]
+        lo[sel] = sc[pos] * grid[np.maximum(jj[pos] - 1, 0)]
+        hi[sel] = wmax[pos]
+        found[sel] = True
     idx = np.flatnonzero(found)
     a, b = lo[idx], hi[idx]
     Xf, Yff = Xs[idx], Ys[idx]
