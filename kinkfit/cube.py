@@ -478,9 +478,6 @@ def read_cube(path, *, centre=None, line_free=None) -> Cube:
 
 
 def _read_from_hdul(hdul, path, centre, line_free):
-    from astropy.io import fits
-    from astropy.wcs import WCS, FITSFixedWarning
-
     hdu_index, hdu, shape_fits = _pick_image_hdu(hdul, path)
     hdr = hdu.header
     naxis = len(shape_fits)
@@ -495,327 +492,40 @@ def _read_from_hdul(hdul, path, centre, line_free):
     cards = {}
 
     def card(key):
+        """Return a header value and record it as relied upon."""
         if key in hdr:
             v = hdr[key]
             cards[key] = v if isinstance(v, (bool, int, float, str)) else str(v)
         return hdr.get(key)
 
-    ctypes = [str(hdr.get(f"CTYPE{i}", "")).strip() for i in range(1, naxis + 1)]
-    for i in range(1, naxis + 1):
-        card(f"CTYPE{i}")
-
-    # -- locate the axes by CTYPE (FITS axis numbers 0-based here) -------
-    lng = [k for k, c in enumerate(ctypes) if c.upper().startswith(("RA--", "GLON", "ELON"))
-           or c.upper() == "RA"]
-    lat = [k for k, c in enumerate(ctypes) if c.upper().startswith(("DEC-", "GLAT", "ELAT"))
-           or c.upper() == "DEC"]
-    spec = [k for k, c in enumerate(ctypes) if c.upper()[:4] in _SPECTRAL_HEADS]
-    stokes = [k for k, c in enumerate(ctypes) if c.upper() == "STOKES"]
-    if len(spec) != 1:
-        raise InputFileError(f"{path}: no spectral axis (CTYPEs {ctypes}); expected one of "
-                             f"FREQ, VRAD, VOPT, VELO", file=path, key="CTYPE3",
-                             value=ctypes)
-    if len(lng) != 1 or len(lat) != 1:
-        raise InputFileError(f"{path}: no pair of celestial axes (CTYPEs {ctypes}); "
-                             f"expected RA---xxx/DEC--xxx", file=path, key="CTYPE1",
-                             value=ctypes)
-    ispec, ilng, ilat = spec[0], lng[0], lat[0]
-    other = [k for k in range(naxis) if k not in (ispec, ilng, ilat)]
-    for k in other:
-        if shape_fits[k] != 1 and k not in stokes:
-            raise InputFileError(f"{path}: axis {k + 1} ({ctypes[k] or 'no CTYPE'}) has "
-                                 f"{shape_fits[k]} pixels; only a degenerate extra axis "
-                                 f"is supported", file=path, key=f"CTYPE{k + 1}",
-                                 value=ctypes[k])
-
-    kind = _spectral_kind(ctypes[ispec])
-    if kind is None:
-        raise InputFileError(f"{path}: spectral axis CTYPE{ispec + 1} = "
-                             f"'{ctypes[ispec]}' is not supported (use FREQ, VRAD, VOPT, "
-                             f"VELO or VELO-LSR, linear)", file=path,
-                             key=f"CTYPE{ispec + 1}", value=ctypes[ispec])
-    if kind == "felo":
-        raise InputFileError(f"{path}: spectral axis CTYPE{ispec + 1} = "
-                             f"'{ctypes[ispec]}' (optical velocity sampled in frequency) "
-                             f"is not supported", file=path, key=f"CTYPE{ispec + 1}",
-                             value=ctypes[ispec])
-
-    # -- header values of every axis must be finite ----------------------
+    ctypes = [str(card(f"CTYPE{i}") or "").strip() for i in range(1, naxis + 1)]
+    ispec, ilng, ilat, stokes = _locate_axes(ctypes, shape_fits, path)
     for i in range(1, naxis + 1):
         for key in (f"CRVAL{i}", f"CRPIX{i}", f"CDELT{i}"):
             if key in hdr:
                 _finite_float(hdr, key, path)
     m = _linear_matrix(hdr, naxis, path)
 
-    # -- spectral axis (our own arithmetic; astropy is the test oracle) --
-    s = ispec + 1
-    nchan = shape_fits[ispec]
-    for key in (f"CRVAL{s}", f"CRPIX{s}", f"CUNIT{s}", f"CDELT{s}", "SPECSYS", "VELREF",
-                "RESTFRQ", "RESTFREQ", "RESTWAV"):
-        card(key)
-    crval_s = _finite_float(hdr, f"CRVAL{s}", path)
-    crpix_s = _finite_float(hdr, f"CRPIX{s}", path, default=1.0, required=False)
-    step_s = m[ispec, ispec]
-    if any(m[ispec, j] != 0.0 for j in range(naxis) if j != ispec) or \
-            any(m[j, ispec] != 0.0 for j in range(naxis) if j != ispec):
-        raise InputFileError(f"{path}: spectral axis {s} is coupled to other axes in the "
-                             f"PC/CD matrix; not supported", file=path, key=f"PC{s}_{s}")
-    if step_s == 0.0:
-        key = f"CDELT{s}" if f"CDELT{s}" in hdr or f"CD{s}_{s}" not in hdr else f"CD{s}_{s}"
-        raise InputFileError(f"{path}: spectral channel width is zero ({key} = "
-                             f"{hdr.get(key, 0.0)!r})", file=path, key=key, value=0.0)
-    from astropy import units as u
-    pix = np.arange(nchan, dtype=float)
-    native = crval_s + step_s * (pix + 1.0 - crpix_s)
-
-    rest_hz = None
-    for key in ("RESTFRQ", "RESTFREQ"):
-        if key in hdr:
-            val = _finite_float(hdr, key, path)
-            if val <= 0:
-                raise InputFileError(f"{path}: {key} = {val!r} is not a positive frequency",
-                                     file=path, key=key, value=val)
-            rest_hz = val
-            break
-    if rest_hz is None and "RESTWAV" in hdr:
-        wav = _finite_float(hdr, "RESTWAV", path)
-        if wav <= 0:
-            raise InputFileError(f"{path}: RESTWAV = {wav!r} is not a positive wavelength",
-                                 file=path, key="RESTWAV", value=wav)
-        rest_hz = C_KMS * 1e3 / wav  # RESTWAV in m (FITS Paper III)
-
-    if kind == "freq":
-        unit = _unit(hdr.get(f"CUNIT{s}"), path, f"CUNIT{s}", u.Hz)
-        if unit.physical_type != "frequency":
-            raise InputFileError(f"{path}: CUNIT{s} = {hdr.get(f'CUNIT{s}')!r} is not a "
-                                 f"frequency unit for CTYPE{s} = '{ctypes[ispec]}'",
-                                 file=path, key=f"CUNIT{s}", value=hdr.get(f"CUNIT{s}"))
-        if rest_hz is None:
-            raise InputFileError(f"{path}: frequency axis without a rest frequency "
-                                 f"(RESTFRQ, RESTFREQ and RESTWAV all absent)", file=path,
-                                 key="RESTFRQ")
-        freq_hz = native * unit.to(u.Hz)
-        if np.any(freq_hz <= 0):
-            raise InputFileError(f"{path}: non-positive frequencies on axis {s} "
-                                 f"(CRVAL{s} = {crval_s!r})", file=path,
-                                 key=f"CRVAL{s}", value=crval_s)
-        velocity = radio_velocity_kms(freq_hz, rest_hz)
-        convention = "radio (from frequency)"
-    else:
-        unit = _unit(hdr.get(f"CUNIT{s}"), path, f"CUNIT{s}", u.m / u.s)
-        if unit.physical_type != "speed":
-            raise InputFileError(f"{path}: CUNIT{s} = {hdr.get(f'CUNIT{s}')!r} is not a "
-                                 f"velocity unit for CTYPE{s} = '{ctypes[ispec]}'",
-                                 file=path, key=f"CUNIT{s}", value=hdr.get(f"CUNIT{s}"))
-        v = native * unit.to(u.km / u.s)
-        if kind == "aips-velo":
-            # AIPS convention (as wcslib's spcfix): VELREF > 256 radio, else optical
-            velref = int(hdr.get("VELREF", 0) or 0)
-            kind = "vrad" if velref > 256 else "vopt"
-            log.warning("%s: legacy CTYPE%d = '%s' read as %s (VELREF = %d, AIPS "
-                        "convention)", path, s, ctypes[ispec],
-                        "radio" if kind == "vrad" else "optical", velref)
-        if kind == "vrad":
-            velocity = v
-            convention = "radio"
-        elif kind == "vopt":
-            # nu0/nu = 1 + v_opt/c  ->  v_rad = c v_opt / (c + v_opt)   (FITS Paper III)
-            if np.any(v <= -C_KMS):
-                raise InputFileError(f"{path}: optical velocity <= -c on axis {s}",
-                                     file=path, key=f"CRVAL{s}", value=crval_s)
-            velocity = C_KMS * v / (C_KMS + v)
-            convention = "radio (from optical)"
-        else:  # relativistic 'VELO': nu/nu0 = sqrt((c - v)/(c + v))   (FITS Paper III)
-            if np.any(np.abs(v) >= C_KMS):
-                raise InputFileError(f"{path}: |velocity| >= c on axis {s}", file=path,
-                                     key=f"CRVAL{s}", value=crval_s)
-            velocity = C_KMS * (1.0 - np.sqrt((C_KMS - v) / (C_KMS + v)))
-            convention = "radio (from relativistic)"
-
-    # -- celestial axes through astropy.wcs --------------------------------
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        try:
-            wcs = WCS(hdr, naxis=naxis, fix=True)
-        except Exception as exc:
-            raise InputFileError(f"{path}: invalid WCS header ({' '.join(str(exc).split())})",
-                                 file=path) from None
-    for w in caught:
-        if issubclass(w.category, FITSFixedWarning):
-            log.info("%s: %s", path, " ".join(str(w.message).split()))
-    for key in (f"CRVAL{ilng + 1}", f"CRVAL{ilat + 1}", f"CDELT{ilng + 1}",
-                f"CDELT{ilat + 1}", f"CRPIX{ilng + 1}", f"CRPIX{ilat + 1}",
-                f"CUNIT{ilng + 1}", f"CUNIT{ilat + 1}", "RADESYS", "EQUINOX", "LONPOLE",
-                "LATPOLE"):
-        card(key)
-    for key in (f"CDELT{ilng + 1}", f"CDELT{ilat + 1}"):
-        if key in hdr and float(hdr[key]) == 0.0:
-            raise InputFileError(f"{path}: {key} = 0 (zero pixel size)", file=path,
-                                 key=key, value=0.0)
-    nx, ny = shape_fits[ilng], shape_fits[ilat]
-
-    def cel_world(ix, iy):
-        """World (lon, lat) in deg of 0-based pixels (ix, iy); other axes at pixel 0."""
-        ix = np.atleast_1d(np.asarray(ix, dtype=float))
-        iy = np.atleast_1d(np.asarray(iy, dtype=float))
-        pixcrd = np.zeros((ix.size, naxis))
-        pixcrd[:, ilng] = ix
-        pixcrd[:, ilat] = iy
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            try:
-                world = wcs.wcs_pix2world(pixcrd, 0)
-            except Exception as exc:
-                raise InputFileError(f"{path}: celestial WCS cannot be evaluated "
-                                     f"({' '.join(str(exc).split())})", file=path) from None
-        return world[:, ilng].astype(float), world[:, ilat].astype(float)
-
-    if centre is None:
-        ra0, dec0 = cel_world(nx // 2, ny // 2)
-        ra0, dec0 = float(ra0[0]), float(dec0[0])
-    else:
-        try:
-            ra0, dec0 = (float(centre[0]), float(centre[1]))
-        except (TypeError, ValueError, IndexError):
-            raise ConfigError(f"centre = {centre!r} is not (ra_deg, dec_deg)",
-                              key="centre", value=centre) from None
-        if not (math.isfinite(ra0) and math.isfinite(dec0) and -90 <= dec0 <= 90):
-            raise ConfigError(f"centre = {centre!r} is not a valid (ra_deg, dec_deg)",
-                              key="centre", value=centre)
-    if not (math.isfinite(ra0) and math.isfinite(dec0)):
-        raise InputFileError(f"{path}: celestial WCS gives no finite position for the "
-                             f"centre pixel (check CRVAL/CDELT/CTYPE)", file=path)
-
-    def offsets(ix, iy):
-        lon, latv = cel_world(ix, iy)
-        return _gnomonic_arcsec(lon, latv, ra0, dec0)
-
-    xs_row, _ = offsets(np.arange(nx), np.full(nx, ny // 2))
-    _, ys_col = offsets(np.full(ny, nx // 2), np.arange(ny))
-    if not (np.all(np.isfinite(xs_row)) and np.all(np.isfinite(ys_col))):
-        raise InputFileError(f"{path}: celestial WCS gives non-finite positions inside the "
-                             f"image (CTYPE {ctypes[ilng]}/{ctypes[ilat]})", file=path)
-    # pixel size from the central row/column
-    if nx > 1:
-        px = np.median(np.abs(np.diff(xs_row)))
-    else:
-        px = None
-    if ny > 1:
-        py = np.median(np.abs(np.diff(ys_col)))
-    else:
-        py = None
-    if px is None and py is None:
-        px = py = abs(m[ilng, ilng]) * 3600.0
-    px = py if px is None else px
-    py = px if py is None else py
-    if not (px > 0 and py > 0):
-        raise InputFileError(f"{path}: zero pixel size on the celestial axes", file=path)
-    if abs(px - py) > SQUARE_PIXEL_RTOL * max(px, py):
-        raise InputFileError(f"{path}: non-square pixels ({px:.6g} x {py:.6g} arcsec); "
-                             f"not supported", file=path, key=f"CDELT{ilng + 1}")
-    pixel_arcsec = float(0.5 * (px + py))
-    # separability check on a sub-sampled grid (+ the last row/column)
-    step_x = max(1, nx // 64)
-    step_y = max(1, ny // 64)
-    gx = np.unique(np.r_[np.arange(0, nx, step_x), nx - 1])
-    gy = np.unique(np.r_[np.arange(0, ny, step_y), ny - 1])
-    GX, GY = np.meshgrid(gx, gy)
-    ox, oy = offsets(GX.ravel(), GY.ravel())
-    dev = np.hypot(ox - xs_row[GX.ravel()], oy - ys_col[GY.ravel()])
-    worst = float(np.nanmax(dev)) / pixel_arcsec if dev.size else 0.0
-    if not np.all(np.isfinite(dev)) or worst > GRID_TOLERANCE_PIX:
-        raise InputFileError(f"{path}: celestial grid is rotated or non-linear (a pixel "
-                             f"departs {worst:.3g} pixel from a regular east/north grid, "
-                             f"tolerance {GRID_TOLERANCE_PIX}); not supported", file=path,
-                             key="PC/CROTA", value=worst)
-    for arr, name in ((xs_row, "x"), (ys_col, "y")):
-        if arr.size > 2:
-            fit = np.polyval(np.polyfit(np.arange(arr.size), arr, 1), np.arange(arr.size))
-            if np.max(np.abs(arr - fit)) / pixel_arcsec > GRID_TOLERANCE_PIX:
-                raise InputFileError(f"{path}: celestial {name} offsets are not evenly "
-                                     f"spaced (projection too non-linear over the field)",
-                                     file=path)
-
-    # -- data ------------------------------------------------------------
-    try:
-        raw = hdu.data
-    except Exception as exc:
-        raise InputFileError(f"{path}: data of HDU {hdu_index} unreadable, file truncated "
-                             f"or corrupt ({type(exc).__name__})", file=path) from None
-    if raw is None:
-        raise InputFileError(f"{path}: HDU {hdu_index} has no data", file=path)
-    raw = np.asarray(raw)
-    expected = tuple(reversed(shape_fits))
-    if raw.shape != expected:
-        raise InputFileError(f"{path}: data shape {raw.shape} does not match the header "
-                             f"NAXISn {expected}", file=path, key="NAXIS")
-    # numpy axis of FITS axis k is naxis-1-k
-    index = [slice(None)] * naxis
-    stokes_index = None
-    for k in other:
-        sel = 0
-        if k in stokes and shape_fits[k] > 1:
-            crv = _finite_float(hdr, f"CRVAL{k + 1}", path, default=1.0, required=False)
-            crp = _finite_float(hdr, f"CRPIX{k + 1}", path, default=1.0, required=False)
-            cdl = m[k, k] if m[k, k] != 0 else 1.0
-            vals = crv + cdl * (np.arange(shape_fits[k]) + 1 - crp)
-            hits = np.flatnonzero(np.isclose(vals, 1.0))
-            sel = int(hits[0]) if hits.size else 0
-            log.warning("%s: %d Stokes planes; using plane %d (Stokes value %g)", path,
-                        shape_fits[k], sel, vals[sel])
-        if k in stokes:
-            stokes_index = sel
-        index[naxis - 1 - k] = sel
-    sub = raw[tuple(index)]
-    remaining = [k for k in range(naxis) if k in (ispec, ilng, ilat)]
-    # numpy order of remaining axes is reversed FITS order
-    np_order = [naxis - 1 - k for k in sorted(remaining, reverse=True)]
-    pos = {ax: n for n, ax in enumerate(sorted(np_order))}
-    sub = np.transpose(sub, (pos[naxis - 1 - ispec], pos[naxis - 1 - ilat],
-                             pos[naxis - 1 - ilng]))
-    dtype = np.float64 if sub.dtype == np.float64 else np.float32
-    if sub.dtype.kind in "iu":
-        dtype = np.float64
-    data = np.array(sub, dtype=dtype)
-    blank_mask = ~np.isfinite(data)
-    if blank_mask.all():
-        raise InputFileError(f"{path}: all data values are NaN/blank", file=path)
-
-    # -- beams -----------------------------------------------------------
+    velocity, width, rest_hz, convention = _spectral_axis(hdr, m, ispec, ctypes[ispec],
+                                                          shape_fits[ispec], path, card)
+    x_arcsec, y_arcsec, pixel_arcsec, ra0, dec0 = _sky_grid(
+        hdr, naxis, ilng, ilat, shape_fits, centre, ctypes, path, card)
+    data, stokes_index = _extract_data(hdu, hdu_index, hdr, m, shape_fits, ispec, ilng,
+                                       ilat, stokes, path)
+    nchan = data.shape[0]
     bmaj, bmin, bpa, beam_source = _read_beams(hdul, hdr, path, nchan, stokes_index,
                                                card)
 
-    # -- bunit -----------------------------------------------------------
     bunit_raw = str(card("BUNIT") or "")
-    bunit = normalise_bunit(bunit_raw)
     specsys = str(card("SPECSYS") or "").strip()
-    if not specsys and "VELO-" in ctypes[ispec].upper():
+    if not specsys and "-" in ctypes[ispec]:   # AIPS legacy frame suffix, e.g. VELO-LSR
         specsys = ctypes[ispec].upper().split("-", 1)[1].strip("-")
 
-    # -- noise -----------------------------------------------------------
-    if line_free is None:
-        nedge = max(1, int(round(0.1 * nchan)))
-        lf = sorted(set(range(nedge)) | set(range(max(0, nchan - nedge), nchan)))
-    else:
-        try:
-            lf = sorted({int(k) for k in line_free})
-        except (TypeError, ValueError):
-            raise ConfigError(f"line_free = {line_free!r} is not a list of channel indices",
-                              key="line_free", value=line_free) from None
-        bad = [k for k in lf if not 0 <= k < nchan]
-        if bad or not lf:
-            raise ConfigError(f"line_free channels {bad or lf} outside 0..{nchan - 1} of "
-                              f"{path}", key="line_free", value=line_free)
+    lf = _line_free_channels(line_free, nchan, path)
     noise_per_channel, noise = _robust_noise(data, lf)
     if not math.isfinite(noise):
-        raise InputFileError(f"{path}: line-free channels {lf[:3]}... are all blank; "
+        raise InputFileError(f"{path}: line-free channels {_ranges(lf)} are all blank; "
                              f"no noise estimate", file=path)
-
-    dv = np.abs(np.diff(velocity))
-    width = float(np.median(dv)) if dv.size else float("nan")
-    if nchan == 1:
-        width = abs(float(step_s * unit.to(u.Hz) / rest_hz * C_KMS)) if kind == "freq" \
-            else abs(float(step_s * unit.to(u.km / u.s)))
 
     prov = {
         "path": str(path.resolve()),
@@ -832,15 +542,15 @@ def _read_from_hdul(hdul, path, centre, line_free):
     return Cube(
         data=_readonly(data),
         velocity_kms=_readonly(velocity, float),
-        x_arcsec=_readonly(xs_row, float),
-        y_arcsec=_readonly(ys_col, float),
+        x_arcsec=_readonly(x_arcsec, float),
+        y_arcsec=_readonly(y_arcsec, float),
         pixel_arcsec=pixel_arcsec,
         beam_major_arcsec=_readonly(bmaj, float),
         beam_minor_arcsec=_readonly(bmin, float),
         beam_pa_deg=_readonly(bpa, float),
         noise_per_channel=_readonly(noise_per_channel, float),
         noise=float(noise),
-        bunit=bunit,
+        bunit=normalise_bunit(bunit_raw),
         bunit_raw=bunit_raw,
         rest_frequency_hz=rest_hz,
         channel_width_kms=width,
@@ -850,6 +560,309 @@ def _read_from_hdul(hdul, path, centre, line_free):
         line_free_channels=tuple(lf),
         provenance=prov,
     )
+
+
+def _locate_axes(ctypes, shape_fits, path):
+    """FITS axis indices (0-based) of the spectral, longitude, latitude and Stokes axes."""
+    up = [c.upper() for c in ctypes]
+    lng = [k for k, c in enumerate(up) if c.startswith(("RA--", "GLON", "ELON")) or c == "RA"]
+    lat = [k for k, c in enumerate(up) if c.startswith(("DEC-", "GLAT", "ELAT")) or c == "DEC"]
+    spec = [k for k, c in enumerate(up) if c[:4] in _SPECTRAL_HEADS]
+    stokes = [k for k, c in enumerate(up) if c == "STOKES"]
+    if len(spec) != 1:
+        raise InputFileError(f"{path}: no spectral axis (CTYPEs {ctypes}); expected one of "
+                             f"FREQ, VRAD, VOPT, VELO", file=path, key="CTYPEn",
+                             value=ctypes)
+    if len(lng) != 1 or len(lat) != 1:
+        raise InputFileError(f"{path}: no pair of celestial axes (CTYPEs {ctypes}); "
+                             f"expected RA---xxx/DEC--xxx", file=path, key="CTYPEn",
+                             value=ctypes)
+    ispec, ilng, ilat = spec[0], lng[0], lat[0]
+    for k in range(len(ctypes)):
+        if k not in (ispec, ilng, ilat) and shape_fits[k] != 1 and k not in stokes:
+            raise InputFileError(f"{path}: axis {k + 1} ({ctypes[k] or 'no CTYPE'}) has "
+                                 f"{shape_fits[k]} pixels; only a degenerate extra axis "
+                                 f"is supported", file=path, key=f"CTYPE{k + 1}",
+                                 value=ctypes[k])
+    kind = _spectral_kind(ctypes[ispec])
+    if kind is None or kind == "felo":
+        what = ("optical velocity sampled in frequency" if kind == "felo"
+                else "use FREQ, VRAD, VOPT, VELO or VELO-LSR, linear")
+        raise InputFileError(f"{path}: spectral axis CTYPE{ispec + 1} = "
+                             f"'{ctypes[ispec]}' is not supported ({what})", file=path,
+                             key=f"CTYPE{ispec + 1}", value=ctypes[ispec])
+    return ispec, ilng, ilat, stokes
+
+
+def _rest_frequency_hz(hdr, path):
+    """RESTFRQ, else RESTFREQ, else c / RESTWAV (m); None when all are absent."""
+    for key in ("RESTFRQ", "RESTFREQ"):
+        if key in hdr:
+            val = _finite_float(hdr, key, path)
+            if val <= 0:
+                raise InputFileError(f"{path}: {key} = {val!r} is not a positive frequency",
+                                     file=path, key=key, value=val)
+            return val
+    if "RESTWAV" in hdr:
+        wav = _finite_float(hdr, "RESTWAV", path)
+        if wav <= 0:
+            raise InputFileError(f"{path}: RESTWAV = {wav!r} is not a positive wavelength",
+                                 file=path, key="RESTWAV", value=wav)
+        return C_KMS * 1e3 / wav  # RESTWAV in m (FITS WCS Paper III)
+    return None
+
+
+def _spectral_axis(hdr, m, ispec, ctype, nchan, path, card):
+    """Radio velocities (km/s) of the channel centres, median width, rest frequency.
+
+    Our own arithmetic from the header (FITS WCS Paper III); the tests use
+    astropy's SpectralCoord as the oracle.
+    """
+    from astropy import units as u
+
+    s = ispec + 1
+    naxis = m.shape[0]
+    for key in (f"CRVAL{s}", f"CRPIX{s}", f"CUNIT{s}", f"CDELT{s}", "SPECSYS", "VELREF",
+                "RESTFRQ", "RESTFREQ", "RESTWAV"):
+        card(key)
+    crval = _finite_float(hdr, f"CRVAL{s}", path)
+    crpix = _finite_float(hdr, f"CRPIX{s}", path, default=1.0, required=False)
+    step = m[ispec, ispec]
+    if any(m[ispec, j] != 0.0 or m[j, ispec] != 0.0 for j in range(naxis) if j != ispec):
+        raise InputFileError(f"{path}: spectral axis {s} is coupled to other axes in the "
+                             f"PC/CD matrix; not supported", file=path, key=f"PC{s}_{s}")
+    if step == 0.0:
+        key = f"CD{s}_{s}" if f"CD{s}_{s}" in hdr else f"CDELT{s}"
+        raise InputFileError(f"{path}: spectral channel width is zero ({key} = "
+                             f"{hdr.get(key, 0.0)!r})", file=path, key=key, value=0.0)
+    rest_hz = _rest_frequency_hz(hdr, path)
+    kind = _spectral_kind(ctype)
+    cunit = hdr.get(f"CUNIT{s}")
+    if kind == "freq":
+        unit = _unit(cunit, path, f"CUNIT{s}", u.Hz)
+        if unit.physical_type != "frequency":
+            raise InputFileError(f"{path}: CUNIT{s} = {cunit!r} is not a frequency unit "
+                                 f"for CTYPE{s} = '{ctype}'", file=path, key=f"CUNIT{s}",
+                                 value=cunit)
+        if rest_hz is None:
+            raise InputFileError(f"{path}: frequency axis without a rest frequency "
+                                 f"(RESTFRQ, RESTFREQ and RESTWAV all absent)", file=path,
+                                 key="RESTFRQ")
+        scale = unit.to(u.Hz)
+        convention = "radio (from frequency)"
+    else:
+        unit = _unit(cunit, path, f"CUNIT{s}", u.m / u.s)
+        if unit.physical_type != "speed":
+            raise InputFileError(f"{path}: CUNIT{s} = {cunit!r} is not a velocity unit "
+                                 f"for CTYPE{s} = '{ctype}'", file=path, key=f"CUNIT{s}",
+                                 value=cunit)
+        scale = unit.to(u.km / u.s)
+        if kind == "aips-velo":
+            # AIPS convention (as wcslib's spcfix): VELREF > 256 radio, else optical
+            velref = int(hdr.get("VELREF", 0) or 0)
+            kind = "vrad" if velref > 256 else "vopt"
+            log.warning("%s: legacy CTYPE%d = '%s' read as %s velocity (VELREF = %d, "
+                        "AIPS convention)", path, s, ctype,
+                        "radio" if kind == "vrad" else "optical", velref)
+        convention = {"vrad": "radio", "vopt": "radio (from optical)",
+                      "velo": "radio (from relativistic)"}[kind]
+
+    def radio_kms(pix):
+        native = (crval + step * (pix + 1.0 - crpix)) * scale
+        if kind == "freq":
+            if np.any(native <= 0):
+                raise InputFileError(f"{path}: non-positive frequencies on axis {s} "
+                                     f"(CRVAL{s} = {crval!r})", file=path,
+                                     key=f"CRVAL{s}", value=crval)
+            return radio_velocity_kms(native, rest_hz)
+        if kind == "vrad":
+            return native
+        if kind == "vopt":
+            # nu0/nu = 1 + v_opt/c  ->  v_rad = c v_opt / (c + v_opt)   (FITS WCS Paper III)
+            if np.any(native <= -C_KMS):
+                raise InputFileError(f"{path}: optical velocity <= -c on axis {s}",
+                                     file=path, key=f"CRVAL{s}", value=crval)
+            return C_KMS * native / (C_KMS + native)
+        # relativistic: nu/nu0 = sqrt((c - v)/(c + v))   (FITS WCS Paper III)
+        if np.any(np.abs(native) >= C_KMS):
+            raise InputFileError(f"{path}: |velocity| >= c on axis {s}", file=path,
+                                 key=f"CRVAL{s}", value=crval)
+        return C_KMS * (1.0 - np.sqrt((C_KMS - native) / (C_KMS + native)))
+
+    pix = np.arange(nchan, dtype=float)
+    velocity = radio_kms(pix)
+    if nchan > 1:   # median spacing of adjacent channel centres
+        width = float(np.median(np.abs(np.diff(velocity))))
+    else:           # one channel: its extent along the axis
+        width = float(abs(radio_kms(np.array([0.5])) - radio_kms(np.array([-0.5])))[0])
+    return velocity, width, rest_hz, convention
+
+
+def _sky_grid(hdr, naxis, ilng, ilat, shape_fits, centre, ctypes, path, card):
+    """East/north offsets (arcsec) of the columns and rows, pixel size, centre (deg)."""
+    from astropy.wcs import WCS, FITSFixedWarning
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            wcs = WCS(hdr, naxis=naxis, fix=True)
+        except Exception as exc:
+            raise InputFileError(f"{path}: invalid WCS header ({' '.join(str(exc).split())})",
+                                 file=path) from None
+    for w in caught:
+        if issubclass(w.category, FITSFixedWarning):
+            log.info("%s: %s", path, " ".join(str(w.message).split()))
+    for i in (ilng + 1, ilat + 1):
+        for key in (f"CRVAL{i}", f"CDELT{i}", f"CRPIX{i}", f"CUNIT{i}"):
+            card(key)
+    for key in ("RADESYS", "EQUINOX", "LONPOLE", "LATPOLE"):
+        card(key)
+    for key in (f"CDELT{ilng + 1}", f"CDELT{ilat + 1}"):
+        if key in hdr and float(hdr[key]) == 0.0:
+            raise InputFileError(f"{path}: {key} = 0 (zero pixel size)", file=path,
+                                 key=key, value=0.0)
+    nx, ny = shape_fits[ilng], shape_fits[ilat]
+
+    def world(ix, iy):
+        """(lon, lat) in deg of 0-based pixels (ix, iy); other axes at pixel 0."""
+        ix = np.atleast_1d(np.asarray(ix, dtype=float))
+        iy = np.atleast_1d(np.asarray(iy, dtype=float))
+        pixcrd = np.zeros((ix.size, naxis))
+        pixcrd[:, ilng] = ix
+        pixcrd[:, ilat] = iy
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            try:
+                w = wcs.wcs_pix2world(pixcrd, 0)
+            except Exception as exc:
+                raise InputFileError(f"{path}: celestial WCS cannot be evaluated "
+                                     f"({' '.join(str(exc).split())})", file=path) from None
+        return w[:, ilng].astype(float), w[:, ilat].astype(float)
+
+    if centre is None:
+        lon, lat = world(nx // 2, ny // 2)
+        ra0, dec0 = float(lon[0]), float(lat[0])
+        if not (math.isfinite(ra0) and math.isfinite(dec0)):
+            raise InputFileError(f"{path}: celestial WCS gives no finite position for the "
+                                 f"centre pixel (check CRVAL/CDELT/CTYPE)", file=path)
+    else:
+        try:
+            ra0, dec0 = (float(centre[0]), float(centre[1]))
+        except (TypeError, ValueError, IndexError):
+            raise ConfigError(f"centre = {centre!r} is not (ra_deg, dec_deg)",
+                              key="centre", value=centre) from None
+        if not (math.isfinite(ra0) and math.isfinite(dec0) and -90 <= dec0 <= 90):
+            raise ConfigError(f"centre = {centre!r} is not a valid (ra_deg, dec_deg)",
+                              key="centre", value=centre)
+
+    def offsets(ix, iy):
+        return _gnomonic_arcsec(*world(ix, iy), ra0, dec0)
+
+    x_arcsec, _ = offsets(np.arange(nx), np.full(nx, ny // 2))
+    _, y_arcsec = offsets(np.full(ny, nx // 2), np.arange(ny))
+    if not (np.all(np.isfinite(x_arcsec)) and np.all(np.isfinite(y_arcsec))):
+        raise InputFileError(f"{path}: celestial WCS gives non-finite positions inside the "
+                             f"image (CTYPE {ctypes[ilng]}/{ctypes[ilat]})", file=path)
+    # pixel size from the central row and column (a 1-pixel axis takes the other's)
+    px = float(np.median(np.abs(np.diff(x_arcsec)))) if nx > 1 else None
+    py = float(np.median(np.abs(np.diff(y_arcsec)))) if ny > 1 else None
+    if px is None and py is None:
+        m = _linear_matrix(hdr, naxis, path)
+        px = py = abs(m[ilng, ilng]) * 3600.0
+    px = py if px is None else px
+    py = px if py is None else py
+    if not (px > 0 and py > 0):
+        raise InputFileError(f"{path}: zero pixel size on the celestial axes", file=path)
+    if abs(px - py) > SQUARE_PIXEL_RTOL * max(px, py):
+        raise InputFileError(f"{path}: non-square pixels ({px:.6g} x {py:.6g} arcsec); "
+                             f"not supported", file=path, key=f"CDELT{ilng + 1}")
+    pixel_arcsec = 0.5 * (px + py)
+    # separability: every pixel of a sub-sampled grid (edges included) must sit at
+    # (x_arcsec[i], y_arcsec[j]) within GRID_TOLERANCE_PIX
+    gx = np.unique(np.r_[np.arange(0, nx, max(1, nx // 64)), nx - 1])
+    gy = np.unique(np.r_[np.arange(0, ny, max(1, ny // 64)), ny - 1])
+    GX, GY = (g.ravel() for g in np.meshgrid(gx, gy))
+    ox, oy = offsets(GX, GY)
+    dev = np.hypot(ox - x_arcsec[GX], oy - y_arcsec[GY]) / pixel_arcsec
+    worst = float(np.max(dev)) if np.all(np.isfinite(dev)) else float("inf")
+    if worst > GRID_TOLERANCE_PIX:
+        raise InputFileError(f"{path}: celestial grid is rotated or non-linear (a pixel "
+                             f"departs {worst:.3g} pixel from a regular east/north grid, "
+                             f"tolerance {GRID_TOLERANCE_PIX}); not supported", file=path,
+                             key="PCi_j/CROTA2", value=worst)
+    for arr, name in ((x_arcsec, "x"), (y_arcsec, "y")):
+        if arr.size > 2:
+            k = np.arange(arr.size)
+            fit = np.polyval(np.polyfit(k, arr, 1), k)
+            if np.max(np.abs(arr - fit)) / pixel_arcsec > GRID_TOLERANCE_PIX:
+                raise InputFileError(f"{path}: celestial {name} offsets are not evenly "
+                                     f"spaced (projection too non-linear over the field)",
+                                     file=path)
+    return x_arcsec, y_arcsec, float(pixel_arcsec), ra0, dec0
+
+
+def _extract_data(hdu, hdu_index, hdr, m, shape_fits, ispec, ilng, ilat, stokes, path):
+    """Data as (nchan, ny, nx) float32/float64 in file pixel order; Stokes plane used."""
+    try:
+        raw = hdu.data
+    except Exception as exc:
+        raise InputFileError(f"{path}: data of HDU {hdu_index} unreadable, file truncated "
+                             f"or corrupt ({type(exc).__name__})", file=path) from None
+    if raw is None:
+        raise InputFileError(f"{path}: HDU {hdu_index} has no data", file=path)
+    raw = np.asarray(raw)
+    naxis = len(shape_fits)
+    expected = tuple(reversed(shape_fits))
+    if raw.shape != expected:
+        raise InputFileError(f"{path}: data shape {raw.shape} does not match the header "
+                             f"NAXISn {expected}", file=path, key="NAXIS")
+    # NumPy axis of FITS axis k (0-based) is naxis - 1 - k; squeeze only after locating
+    index = [slice(None)] * naxis
+    stokes_index = None
+    for k in range(naxis):
+        if k in (ispec, ilng, ilat):
+            continue
+        sel = 0
+        if k in stokes and shape_fits[k] > 1:
+            crv = _finite_float(hdr, f"CRVAL{k + 1}", path, default=1.0, required=False)
+            crp = _finite_float(hdr, f"CRPIX{k + 1}", path, default=1.0, required=False)
+            cdl = m[k, k] if m[k, k] != 0 else 1.0
+            vals = crv + cdl * (np.arange(shape_fits[k]) + 1 - crp)
+            hits = np.flatnonzero(np.isclose(vals, 1.0))   # STOKES = 1 is I (Paper I)
+            sel = int(hits[0]) if hits.size else 0
+            log.warning("%s: %d Stokes planes; using plane %d (Stokes value %g)", path,
+                        shape_fits[k], sel, vals[sel])
+        if k in stokes:
+            stokes_index = sel
+        index[naxis - 1 - k] = sel
+    sub = raw[tuple(index)]
+    # remaining NumPy axes are in decreasing FITS order: rank them to transpose
+    kept = sorted((naxis - 1 - k for k in (ispec, ilng, ilat)))
+    pos = {ax: n for n, ax in enumerate(kept)}
+    sub = np.transpose(sub, (pos[naxis - 1 - ispec], pos[naxis - 1 - ilat],
+                             pos[naxis - 1 - ilng]))
+    dtype = np.float64 if sub.dtype in (np.float64, np.int32, np.int64) else np.float32
+    data = np.array(sub, dtype=dtype)
+    if not np.isfinite(data).any():
+        raise InputFileError(f"{path}: all data values are NaN/blank", file=path)
+    return data, stokes_index
+
+
+def _line_free_channels(line_free, nchan, path):
+    """Sorted channel list: the user's, or the first and last ~10 % of the channels."""
+    if line_free is None:
+        nedge = max(1, int(round(0.1 * nchan)))
+        return sorted(set(range(nedge)) | set(range(max(0, nchan - nedge), nchan)))
+    try:
+        lf = sorted({int(k) for k in line_free})
+    except (TypeError, ValueError):
+        raise ConfigError(f"line_free = {line_free!r} is not a list of channel indices",
+                          key="line_free", value=line_free) from None
+    bad = [k for k in lf if not 0 <= k < nchan]
+    if bad or not lf:
+        raise ConfigError(f"line_free channels {bad or lf} outside 0..{nchan - 1} of "
+                          f"{path}", key="line_free", value=line_free)
+    return lf
 
 
 def _gnomonic_arcsec(lon_deg, lat_deg, lon0_deg, lat0_deg):
