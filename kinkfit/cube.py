@@ -661,7 +661,7 @@ def _spectral_axis(hdr, m, ispec, ctype, nchan, path, card):
             # AIPS convention (as wcslib's spcfix): VELREF > 256 radio, else optical
             velref = int(hdr.get("VELREF", 0) or 0)
             kind = "vrad" if velref > 256 else "vopt"
-            log.warning("%s: legacy CTYPE%d = '%s' read as %s velocity (VELREF = %d, "
+            log.info("%s: legacy CTYPE%d = '%s' read as %s velocity (VELREF = %d, "
                         "AIPS convention)", path, s, ctype,
                         "radio" if kind == "vrad" else "optical", velref)
         convention = {"vrad": "radio", "vopt": "radio (from optical)",

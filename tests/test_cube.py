@@ -455,3 +455,27 @@ def test_montage_figure_axes(tmp_path, nchan_cube, nshow, ncols, expected):
     fig2 = Figure()
     assert plot_channel_montage(cube, nchan=4, ncols=2, fig=fig2) is fig2
     assert len([ax for ax in fig2.axes if ax.images]) == 4
+
+
+def test_single_channel_width_and_velocity_axis_without_rest(tmp_path):
+    # one FREQ channel: width = c |CDELT3| / nu0 (radio convention, PHYSICS.md §2)
+    one = read_cube(ff.write(tmp_path / "one.fits", ff.cube_header(
+        nchan=1, spectral=ff.spectral_cards("FREQ", 1, dv_kms=0.25))))
+    assert one.channel_width_kms == pytest.approx(0.25, rel=1e-9)
+    assert one.line_free_channels == (0,)
+    # a VRAD axis needs no rest frequency (FITS WCS Paper III): reported as None
+    vrad = read_cube(ff.write(tmp_path / "vrad.fits", ff.cube_header(
+        rest=(), spectral=ff.spectral_cards("VRAD", 12, unit="km/s"))))
+    assert vrad.rest_frequency_hz is None
+    np.testing.assert_allclose(vrad.velocity_kms, -1.5 + 0.25 * np.arange(12), atol=1e-12)
+    assert "absent" in describe_cube(vrad)
+
+
+def test_write_refuses_structural_card_and_bad_beam(tmp_path, rng):
+    kw = dict(velocity_kms=np.arange(16.0), pixel_arcsec=0.05, rest_frequency_hz=NU0,
+              beam=(0.3, 0.2, 0.0), ra_deg=ff.RA0, dec_deg=ff.DEC0)
+    with pytest.raises(InputFileError, match="NAXIS1"):
+        write_cube(tmp_path / "x.fits", _example(rng), extra_cards={"NAXIS1": 3}, **kw)
+    with pytest.raises(InputFileError, match="beam"):
+        write_cube(tmp_path / "y.fits", _example(rng), **{**kw, "beam": (0.3, -1, 0)})
+    assert list(tmp_path.iterdir()) == []
