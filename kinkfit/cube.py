@@ -405,7 +405,13 @@ def _pick_image_hdu(hdul, path):
 
 
 def _spectral_kind(ctype):
-    """Classify a spectral CTYPE: ('freq'|'vrad'|'vopt'|'velo'|'aips-velo', text) or None."""
+    """Classify a spectral CTYPE.
+
+    Returns ``'freq'``, ``'vrad'``, ``'vopt'``, ``'velo'`` (relativistic, FITS WCS
+    Paper III), ``'aips-velo'`` (legacy ``VELO-LSR`` etc., convention from
+    ``VELREF``), ``'felo'`` (recognised, refused) or None (not supported, e.g.
+    WAVE or a non-linear algorithm code such as ``VOPT-F2W``).
+    """
     c = ctype.strip().upper()
     head, _, tail = c.partition("-")
     tail = tail.strip("-")
@@ -424,8 +430,9 @@ def _spectral_kind(ctype):
     return None
 
 
+#: first four letters of every spectral CTYPE (FITS WCS Paper III + AIPS FELO)
 _SPECTRAL_HEADS = {"FREQ", "VRAD", "VOPT", "VELO", "FELO", "WAVE", "AWAV", "ZOPT",
-                   "ENER", "WAVN", "VELO", "BETA", "VOPT"}
+                   "ENER", "WAVN", "BETA"}
 
 
 def read_cube(path, *, centre=None, line_free=None) -> Cube:
@@ -436,8 +443,9 @@ def read_cube(path, *, centre=None, line_free=None) -> Cube:
     path : str or os.PathLike
         FITS file (the first image HDU with 3 or more axes is used).
     centre : (float, float), optional
-        ``(ra_deg, dec_deg)`` of the offset origin; default the world position
-        of pixel ``(nx // 2, ny // 2)`` (0-based).
+        ``(ra_deg, dec_deg)`` of the offset origin, in the celestial frame of
+        the file (``RADESYS``; no frame conversion); default the world
+        position of pixel ``(nx // 2, ny // 2)`` (0-based).
     line_free : sequence of int, optional
         Channels (file order) free of line emission, used for the noise.
         Default: the first and last ``max(1, round(0.1 nchan))`` channels.
@@ -445,6 +453,8 @@ def read_cube(path, *, centre=None, line_free=None) -> Cube:
     Returns
     -------
     Cube
+        Channels in file order.  Of a Stokes axis the plane with value 1 (I)
+        is used (else the first); other degenerate axes are dropped.
 
     Raises
     ------
