@@ -479,7 +479,7 @@ def truth_cards(geom: DiskGeometry, setup: ObservingSetup, emission: LineEmissio
     """
     f, b = geom.front, geom.surface("back")
     cards = [
-        ("SYNTRUTH", True, "kinkfit synthetic cube; SYN* cards are the truth"),
+        ("SYNTRUTH", True, "synthetic cube: SYN* cards = truth"),
         ("SYNMSTAR", geom.mstar_msun, "stellar mass, Msun"),
         ("SYNDIST", geom.distance_pc, "distance, pc"),
         ("SYNINC", geom.inclination_deg, "inclination, deg"),
