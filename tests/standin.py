@@ -48,3 +48,37 @@ def standin_data(rng, npts=150, truth=TRUTH, sigma=0.01):
     return dict(r_au=r, phi_rad=phi, a_r=a_r, a_phi=a_phi,
                 grad_kms_per_arcsec=grad, offset_arcsec=off + noise,
                 sigma_arcsec=sig, channel=rng.integers(0, 40, npts))
+
+
+def standin_result(folder, *, seed=5, npts=60, max_steps=300, baseline=False,
+                   walkers=10):
+    """A small real fit (sampler run + assemble_result) on stand-in data."""
+    from kinkfit.config import SamplerSettings
+    from kinkfit.likelihood import KinkLikelihood
+    from kinkfit.results import assemble_result
+    from kinkfit.sampling import run_sampler
+
+    rng = np.random.default_rng(seed)
+    data = standin_data(rng, npts=npts)
+    if baseline:
+        ps = parameters_for("none", {"jitter": LogUniform(1e-3, 0.1)},
+                            with_planet=False)
+        lik = KinkLikelihood(model=None, param_set=ps, **data)
+        start = np.array([0.02])
+    else:
+        lik = KinkLikelihood(model=standin_model, param_set=standin_params(),
+                             **data)
+        start = lik.param_set.pack(TRUTH)[0]
+    settings = SamplerSettings(walkers=walkers, max_steps=max_steps,
+                               check_every=50, autocorr_multiple=50.0,
+                               tau_tolerance=0.01, seed=3, workers=1,
+                               progress=False)
+    out = run_sampler(lik.log_prob, lik.param_set, settings,
+                      folder / f"ck{'0' if baseline else ''}.h5",
+                      initial=start)
+    res = assemble_result(
+        out, lik, damping="none", config_text="title = 'fictional'\n",
+        title="fictional test disk", background={"stellar_mass": 1.1},
+        background_sigma={"stellar_mass": 0.02},
+        truths={} if baseline else TRUTH, max_pointwise=100)
+    return res, lik, out
