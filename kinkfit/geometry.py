@@ -164,6 +164,23 @@ class EmittingSurface:
                 z = z * np.exp(-(r / self.taper_au) ** 2)
         return z
 
+    def slope(self, r_au):
+        """Radial derivative of the height, ``dz/dr`` (dimensionless).
+
+        ``z (flaring / r - 2 r / taper^2)``; 0 at ``r = 0`` when finite.
+        """
+        r = np.asarray(r_au, dtype=float)
+        if self.aspect == 0.0:
+            return np.zeros_like(r)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            x = r / self.r_ref_au
+            d = self.aspect * self.flaring * x ** (self.flaring - 1.0)
+            if self.taper_au is not None:
+                taper = np.exp(-(r / self.taper_au) ** 2)
+                d = taper * (d - 2.0 * r / self.taper_au ** 2
+                             * self.aspect * self.r_ref_au * x ** self.flaring)
+        return d
+
 
 @dataclass(frozen=True)
 class DiskGeometry:
@@ -390,14 +407,33 @@ def _sky_components(geom, x_arcsec, y_arcsec):
     return X, Yflat
 
 
-def _solve_height(surf: EmittingSurface, X, Yflat, tan_i, side):
+def _max_height(surf: EmittingSurface, r_min, r_max):
+    """Largest height of the layer over ``[r_min, r_max]`` (inf if unbounded)."""
+    cands = [r_min, r_max]
+    if surf.taper_au is not None:
+        cands.append(min(max(surf.taper_au * math.sqrt(surf.flaring / 2.0), r_min),
+                         r_max))
+    with np.errstate(over="ignore", invalid="ignore"):
+        vals = [float(surf.height_au(c)) if math.isfinite(c) else
+                (0.0 if surf.taper_au is not None else
+                 (math.inf if surf.flaring > 0 else surf.aspect * surf.r_ref_au))
+                for c in cands]
+    return max(vals)
+
+
+def _solve_height(surf: EmittingSurface, X, Yflat, tan_i, side,
+                  r_min=0.0, r_max=math.inf):
     """Height ``w >= 0`` of the layer where the line of sight meets it.
 
     Solves ``G(w) = w - h(hypot(X, Yflat - side * w * tan_i)) = 0`` for the
     smallest root ``w >= 0`` at which ``G`` turns from negative to positive,
     i.e. the crossing nearest the midplane with the layer seen from its
     observer-facing side.  ``side`` is +1 for the front layer, -1 for the
-    back one.  Returns NaN where no root is bracketed by the scan grid.
+    back one.  The root is bracketed on a scan grid (stopped beyond the
+    largest height the layer reaches within ``[r_min, r_max]``), grazing
+    rays are caught by a golden-section search for the maximum of ``G``,
+    and the bracket is polished by safeguarded Newton steps.  Returns NaN
+    where no root is found.
     """
     X = np.asarray(X, dtype=float).ravel()
     Yf = np.asarray(Yflat, dtype=float).ravel()
@@ -407,7 +443,7 @@ def _solve_height(surf: EmittingSurface, X, Yflat, tan_i, side):
         return w - surf.height_au(np.hypot(Xs, Ys - side * w * tan_i))
 
     h0 = surf.height_au(np.hypot(X, Yf))
-    ok = np.isfinite(h0)
+    ok = np.isfinite(h0) & (np.abs(X) <= r_max)
     zero = ok & (h0 <= 0.0)
     out[zero] = 0.0
     todo = np.flatnonzero(ok & ~zero)
@@ -415,26 +451,32 @@ def _solve_height(surf: EmittingSurface, X, Yflat, tan_i, side):
         if tan_i == 0.0:
             out[todo] = h0[todo]
         return out
+    h_max = _max_height(surf, r_min, r_max)
     Xs, Ys, scale = X[todo], Yf[todo], h0[todo]
-    lo = np.zeros(todo.size)
-    hi = np.full(todo.size, np.nan)
-    found = np.zeros(todo.size, dtype=bool)
-    prev = np.zeros(todo.size)
-    best = -h0[todo]                      # largest sampled G and its index
-    best_j = np.zeros(todo.size, dtype=int)
+    nt = todo.size
+    lo = np.zeros(nt)
+    hi = np.full(nt, np.nan)
+    found = np.zeros(nt, dtype=bool)
+    best = -scale.copy()                  # largest sampled G and its index
+    best_j = np.zeros(nt, dtype=int)
+    act = np.arange(nt)                   # rays still being scanned
+    prev = 0.0
     for j, g in enumerate(_SCAN, start=1):
-        w = scale * g
-        gw = G(w, Xs, Ys)
-        newly = (~found) & (gw > 0.0)
-        lo[newly] = prev[newly]
-        hi[newly] = w[newly]
-        found |= newly
-        if found.all():
+        w = scale[act] * g
+        gw = G(w, Xs[act], Ys[act])
+        pos = gw > 0.0
+        sel = act[pos]
+        lo[sel] = scale[sel] * prev
+        hi[sel] = w[pos]
+        found[sel] = True
+        better = gw > best[act]
+        best[act[better]] = gw[better]
+        best_j[act[better]] = j
+        keep = ~pos & (w <= h_max)
+        act = act[keep]
+        prev = g
+        if act.size == 0:
             break
-        better = gw > best
-        best = np.where(better, gw, best)
-        best_j = np.where(better, j, best_j)
-        prev = w
     # rays that graze the layer (two roots inside one scan cell, next to a
     # fold): maximise G around the best sample by golden-section search
     miss = np.flatnonzero(~found & (best > -0.05 * scale))
@@ -461,13 +503,31 @@ def _solve_height(surf: EmittingSurface, X, Yflat, tan_i, side):
     idx = np.flatnonzero(found)
     a, b = lo[idx], hi[idx]
     Xf, Yff = Xs[idx], Ys[idx]
+    w = 0.5 * (a + b)
+    tol = 4.0 * np.finfo(float).eps * np.maximum(b, scale[idx])
+    live = np.arange(idx.size)
     for _ in range(_BISECTIONS):
-        mid = 0.5 * (a + b)
-        pos = G(mid, Xf, Yff) > 0.0
-        b = np.where(pos, mid, b)
-        a = np.where(pos, a, mid)
-    res = np.full(todo.size, np.nan)
-    res[idx] = 0.5 * (a + b)
+        wl, al, bl = w[live], a[live], b[live]
+        Xl, Yl = Xf[live], Yff[live]
+        Y = Yl - side * wl * tan_i
+        r = np.hypot(Xl, Y)
+        gl = wl - surf.height_au(r)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dg = 1.0 + side * tan_i * surf.slope(r) * Y / r
+            newton = wl - gl / dg
+        pos = gl > 0.0
+        bl = np.where(pos, wl, bl)
+        al = np.where(pos, al, wl)
+        good = np.isfinite(newton) & (newton > al) & (newton < bl)
+        wn = np.where(good, newton, 0.5 * (al + bl))
+        a[live], b[live] = al, bl
+        done = (np.abs(wn - wl) <= tol[live]) | (gl == 0.0) | (bl - al <= tol[live])
+        w[live] = np.where(gl == 0.0, wl, wn)
+        live = live[~done]
+        if live.size == 0:
+            break
+    res = np.full(nt, np.nan)
+    res[idx] = w
     out[todo] = res
     return out
 
@@ -509,7 +569,8 @@ def sky_to_disk(geom: DiskGeometry, x_arcsec, y_arcsec, surface="front"):
     if surf.is_flat:
         w = np.zeros(shape)
     else:
-        w = _solve_height(surf, X, Yf, tan_i, side).reshape(shape)
+        w = _solve_height(surf, X, Yf, tan_i, side, geom.r_min_au,
+                          geom.r_max_au).reshape(shape)
     Y = Yf - side * w * tan_i
     r = np.hypot(X, Y)
     phi = np.arctan2(Y, X)

@@ -347,3 +347,29 @@ def test_taper_and_back_surface():
     g2 = DiskGeometry(1.0, 100.0, 30.0, 0.0, rotation=-1, front=FLARED)
     assert float(surface_point(g2, 100.0, 0.0, "front")) == pytest.approx(-30.0)
     assert float(surface_point(g2, 100.0, 0.0, "back")) == pytest.approx(30.0)
+
+
+def test_surface_slope():
+    # analytic facts of z = a r_ref (r/r_ref)^f exp(-(r/T)^2): a cone (f = 1)
+    # has dz/dr = a; a tapered layer peaks at r = T sqrt(f/2)
+    assert np.allclose(EmittingSurface(0.2, 1.0).slope([1.0, 50.0, 300.0]), 0.2)
+    s = EmittingSurface(0.3, 1.25, 100.0, taper_au=250.0)
+    assert abs(float(s.slope(250.0 * math.sqrt(1.25 / 2)))) < 1e-14
+    r = np.array([20.0, 120.0, 400.0])
+    num = (s.height_au(r + 1e-4) - s.height_au(r - 1e-4)) / 2e-4
+    np.testing.assert_allclose(s.slope(r), num, rtol=1e-6)
+
+
+@pytest.mark.parametrize("which", ["front", "back"])
+def test_round_trip_tapered(which, rng):
+    g = _geom(55.0, -1, EmittingSurface(0.35, 1.3, 100.0, taper_au=220.0),
+              r_max_au=np.inf)
+    r = rng.uniform(3.0, 450.0, 500)
+    phi = rng.uniform(-np.pi, np.pi, 500)
+    z = surface_point(g, r, phi, which)
+    x, y, _ = disk_to_sky(g, r, phi, z)
+    ok = _facing(g, r, phi, which)
+    r2, phi2, z2 = sky_to_disk(g, x[ok], y[ok], which)
+    assert np.all(np.isfinite(r2))
+    x2, y2, _ = disk_to_sky(g, r2, phi2, z2)
+    assert np.max(np.hypot(x2 - x[ok], y2 - y[ok])) < 1e-6 * PIXEL_ARCSEC
