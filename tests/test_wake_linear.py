@@ -43,6 +43,17 @@ def test_bessel_k0_k1_against_scipy():
     assert np.max(np.abs(k1 / special.k1(z) - 1)) < 1e-6
 
 
+def test_potential_fourier_pair_normalisation():
+    # Phi_k = int Phi e^{-iky} dy = -2 G Mp K0(|k| sqrt(x^2+eps^2)) for
+    # Phi = -G Mp / sqrt(x^2 + y^2 + eps^2) (Gradshteyn & Ryzhik 3.754.2,
+    # from memory); oracle: scipy.integrate.quad with a cosine weight.
+    for a, k in ((0.3, 0.5), (1.0, 2.0), (2.5, 0.2)):
+        val = 2.0 * integrate.quad(lambda t: -1.0 / np.sqrt(t * t + a * a),
+                                   0.0, np.inf, weight="cos", wvar=k)[0]
+        k0, _ = L.bessel_k0_k1(k * a)
+        assert val == pytest.approx(-2.0 * k0[0], rel=1e-6)
+
+
 # ------------------------------------------------------ equations in x, y
 def _d(f, h, axis):
     """4th-order central first derivative (interior points valid)."""

@@ -397,7 +397,7 @@ def _check_inputs(softening_h, x_max_h, y_max_h, nx, ny, y_pad, ppw):
 
 
 def solve_sheet(*, softening_h: float = 0.1, x_max_h: float = 8.0,
-                y_max_h: float = 64.0, nx: int = 321, ny: int = 1281,
+                y_max_h: float = 80.0, nx: int = 321, ny: int = 1601,
                 y_pad: float = 1.5, steps_per_wavelength: float = 40.0,
                 wkb_start: float = 800.0) -> SheetSolution:
     """Solve the linear shearing-sheet wake of a planet of mass ``M_th``.
@@ -471,7 +471,7 @@ def solve_sheet(*, softening_h: float = 0.1, x_max_h: float = 8.0,
 
 
 def get_sheet_solution(*, softening_h: float = 0.1, x_max_h: float = 8.0,
-                       y_max_h: float = 64.0, nx: int = 321, ny: int = 1281,
+                       y_max_h: float = 80.0, nx: int = 321, ny: int = 1601,
                        y_pad: float = 1.5, steps_per_wavelength: float = 40.0,
                        wkb_start: float = 800.0) -> SheetSolution:
     """:func:`solve_sheet`, cached on disk through :mod:`kinkfit.cache`.
