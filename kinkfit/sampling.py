@@ -336,8 +336,9 @@ def _open_backend(path: Path, param_set, nwalkers, resume: bool):
     path.parent.mkdir(parents=True, exist_ok=True)
     if path.exists():
         path.unlink()
-    backend = emcee.backends.HDFBackend(str(path), name=CHECKPOINT_GROUP,
-                                        compression="gzip")
+    # uncompressed: emcee's per-step writes into gzip chunks made the file
+    # larger and the steps slower (bench/bench_likelihood.py)
+    backend = emcee.backends.HDFBackend(str(path), name=CHECKPOINT_GROUP)
     backend.reset(nwalkers, ndim)
     return backend, 0, None
 
