@@ -236,3 +236,54 @@ def test_initial_ball_inside_prior():
     p = initial_ball(centre, ps, 50, rng, scale=0.05)
     assert np.all(np.isfinite(ps.log_prior(p)))
     assert np.linalg.matrix_rank(p - p.mean(0)) == ps.ndim  # not degenerate
+
+
+def test_sigint_is_deferred_to_a_complete_step(tmp_path):
+    # the first SIGINT lets the current step finish, then stops with a
+    # complete checkpoint that resumes to the uninterrupted chain
+    ck = tmp_path / "ck.h5"
+    marker = tmp_path / "marker"
+    script = textwrap.dedent(f"""
+        import sys, time
+        sys.path.insert(0, {str(HERE)!r})
+        from pathlib import Path
+        from test_sampling import _lik, _settings, _start
+        from kinkfit.sampling import run_sampler
+        lik = _lik()
+        calls = [0]
+        def lp(theta):
+            calls[0] += 1
+            if calls[0] == 121:
+                Path({str(marker)!r}).write_text("x")
+            if calls[0] >= 121:
+                time.sleep(0.2)   # the signal arrives inside log_prob
+            return lik.log_prob(theta)
+        run_sampler(lp, lik.param_set, _settings(), {str(ck)!r},
+                    initial=_start(lik), rng_seed=9)
+        print("FINISHED")
+    """)
+    env = dict(os.environ, PYTHONPATH=str(HERE))
+    proc = subprocess.Popen([sys.executable, "-c", script], env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    try:
+        deadline = time.time() + 120
+        while not marker.exists():
+            if proc.poll() is not None:
+                pytest.fail("worker exited: " + proc.stderr.read().decode())
+            assert time.time() < deadline, "worker never reached the marker"
+            time.sleep(0.05)
+        proc.send_signal(signal.SIGINT)
+        out, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert b"FINISHED" not in out
+    assert b"KeyboardInterrupt" in err and b"stopped at iteration" in err
+    chain, _, it = read_checkpoint(ck)
+    assert 0 < it < 90
+    lik = _lik()
+    ref = run_sampler(lik.log_prob, lik.param_set, _settings(),
+                      tmp_path / "ref.h5", initial=_start(lik), rng_seed=9)
+    out = run_sampler(lik.log_prob, lik.param_set, _settings(), ck,
+                      initial=_start(lik), rng_seed=9)
+    np.testing.assert_array_equal(out.chain, ref.chain)
