@@ -65,6 +65,7 @@ __all__ = [
     "beam_noise",
     "write_synthetic_cube",
     "truth_cards",
+    "geometry_from_header",
     "REST_FREQUENCY_12CO_21_HZ",
 ]
 
@@ -514,6 +515,49 @@ def truth_cards(geom: DiskGeometry, setup: ObservingSetup, emission: LineEmissio
         for key, value in asdict(obj).items():
             cards.append(("HISTORY", f"synth {name}.{key} = {value!r}"))
     return cards
+
+
+def geometry_from_header(header) -> DiskGeometry:
+    """The true :class:`DiskGeometry` recorded by :func:`truth_cards`.
+
+    Parameters
+    ----------
+    header : mapping
+        FITS header (or dict) with the ``SYN*`` cards.
+
+    Raises
+    ------
+    InputFileError
+        If the header is not that of a synthetic cube.
+    """
+    from .errors import InputFileError
+    from .geometry import EmittingSurface
+
+    if not header.get("SYNTRUTH", False):
+        raise InputFileError("header has no SYNTRUTH card: not a kinkfit synthetic cube",
+                             key="SYNTRUTH")
+
+    def layer(prefix):
+        taper = float(header[f"SYN{prefix}TAP"])
+        return EmittingSurface(float(header[f"SYN{prefix}ASP"]),
+                               float(header[f"SYN{prefix}FLR"]),
+                               float(header[f"SYN{prefix}REF"]),
+                               None if taper < 0 else taper)
+
+    try:
+        front, back = layer("F"), layer("B")
+        rmax = float(header["SYNRMAX"])
+        return DiskGeometry(
+            mstar_msun=float(header["SYNMSTAR"]), distance_pc=float(header["SYNDIST"]),
+            inclination_deg=float(header["SYNINC"]),
+            position_angle_deg=float(header["SYNPA"]), rotation=int(header["SYNROT"]),
+            x0_arcsec=float(header["SYNX0"]), y0_arcsec=float(header["SYNY0"]),
+            vsys_kms=float(header["SYNVSYS"]), front=front,
+            back=None if back == front else back,
+            r_max_au=math.inf if rmax < 0 else rmax, r_min_au=float(header["SYNRMIN"]))
+    except KeyError as err:
+        raise InputFileError(f"synthetic-cube header lacks card {err.args[0]}",
+                             key=str(err.args[0])) from None
 
 
 def write_synthetic_cube(path, geom: DiskGeometry, setup: ObservingSetup,

@@ -12,11 +12,13 @@ from astropy.wcs import WCS
 from scipy.integrate import quad
 from scipy.optimize import brentq
 
-from kinkfit.errors import ConfigError, PhysicsRangeError, ResultFileError
+from kinkfit.errors import (ConfigError, InputFileError, PhysicsRangeError,
+                             ResultFileError)
 from kinkfit.geometry import DiskGeometry, EmittingSurface, background_velocity
 from kinkfit.synth import (
     LineEmission, ObservingSetup, beam_kernel, beam_noise, channel_profile,
-    channel_velocities, make_cube, sky_grid, write_synthetic_cube,
+    channel_velocities, geometry_from_header, make_cube, sky_grid,
+    write_synthetic_cube,
 )
 
 # flat, narrow-lined, uniformly bright disk: the peak of each channel's
@@ -247,6 +249,9 @@ def test_written_cube_reads_back(tmp_path):
         assert hdr["SYNINC"] == 35.0 and hdr["SYNROT"] == -1 and hdr["SYNMPL"] == 1.5
         assert hdr["SYNNOISE"] == pytest.approx(0.05 / 20.0)
         assert any("emission.peak_jy_beam" in str(c) for c in hdr["HISTORY"])
+        assert geometry_from_header(hdr) == g            # truth round trip
+    with pytest.raises(InputFileError):
+        geometry_from_header({"BUNIT": "Jy/beam"})
     np.testing.assert_allclose(v_ast, v_true, atol=1e-6)
     cube = read_cube(path)
     np.testing.assert_allclose(cube.velocity_kms, v_true, atol=1e-6)
