@@ -320,7 +320,13 @@ def test_sheet_profile_interpolates_between_nodes(coarse):
         y, s, u, v = L.sheet_profile(sol, x)
         j = _rows(ref, (x,))[0]
         amp = np.max(np.abs(ref.sigma[j]))
-        assert np.max(np.abs(s - ref.sigma[j])) < 0.08 * amp
+        # measured 0.3-0.5% (dx = 0.2); plain linear interpolation in x
+        # is 30-50% off because the wake moves by ~1.5|x| dx in y
+        assert np.max(np.abs(s - ref.sigma[j])) < 0.02 * amp
+        i = int(np.floor((x - sol.x_h[0]) / 0.2 + 1e-9))
+        t = (x - sol.x_h[i]) / 0.2
+        naive = (1 - t) * sol.sigma[i] + t * sol.sigma[i + 1]
+        assert np.max(np.abs(naive - ref.sigma[j])) > 0.1 * amp
         assert np.argmax(s) == pytest.approx(np.argmax(ref.sigma[j]), abs=1)
     # on a node the profile is the row itself
     y, s, u, v = L.sheet_profile(sol, sol.x_h[30])
