@@ -85,7 +85,7 @@ from .errors import ResultFileError
 
 __all__ = ["SCHEMA_VERSION", "FitResult", "write_result", "read_result",
            "assemble_result", "file_sha256", "library_versions",
-           "prior_spec_json"]
+           "prior_spec_json", "result_parameter_set", "likelihood_from_result"]
 
 log = logging.getLogger(__name__)
 
@@ -195,6 +195,45 @@ def prior_spec_json(prior) -> str:
         v = float(getattr(prior, f.name))
         d[f.name] = v if np.isfinite(v) else str(v)
     return json.dumps(d, sort_keys=True)
+
+
+def _prior_from_json(text: str):
+    from .priors import make_prior
+    d = json.loads(text)
+    kind = d.pop("kind")
+    return make_prior(kind, **{k: float(v) for k, v in d.items()},
+                      key="prior_specs")
+
+
+def result_parameter_set(result: "FitResult"):
+    """The :class:`~kinkfit.params.ParameterSet` a result was sampled with.
+
+    Free parameters keep their sampler order (and stored priors); fixed ones
+    follow them.
+    """
+    from .params import ParameterSet
+    from .priors import Fixed
+    names = list(result.param_names) + list(result.fixed)
+    priors = [_prior_from_json(t) for t in result.prior_specs]
+    priors += [Fixed(float(v)) for v in result.fixed.values()]
+    return ParameterSet(tuple(names), tuple(priors))
+
+
+def likelihood_from_result(result: "FitResult", model=None):
+    """Rebuild the likelihood of a result from its stored traced data.
+
+    Parameters
+    ----------
+    model : callable or None
+        The model the fit used (``None`` for the planet-free baseline).
+        It is not stored in the file; pass the same one.
+    """
+    from .likelihood import KinkLikelihood
+    d = result.data
+    return KinkLikelihood(
+        *(d[n] for n in _TRACED_CORE), model, result_parameter_set(result),
+        kind=result.likelihood_kind, dof=result.likelihood_dof,
+        channel=d.get("channel"))
 
 
 def _now_utc() -> str:
