@@ -90,7 +90,8 @@ class SamplerOutcome:
     resumed_from : int
         Iterations already in the checkpoint when this call started.
     tau_history : ndarray, shape (k, 1 + ndim)
-        Iteration and tau at every convergence check of this call.
+        Iteration and tau at every convergence check since the start of the
+        chain (checks before a resume are recomputed from the stored chain).
     settings : dict
         The convergence settings used.
     """
@@ -465,6 +466,19 @@ def run_sampler(log_prob: Callable, param_set: ParameterSet, settings,
                                   evaluator, scale=ball_scale)
             state = p0
         else:
+            # emcee's backend stores the RandomState after every step; make
+            # the restore explicit (emcee's setter ignores failures silently)
+            stored = backend.random_state
+            if stored is None:
+                log.warning("checkpoint %s has no random state: the resumed "
+                            "chain is valid but not identical to an "
+                            "uninterrupted run", path)
+            else:
+                sampler.random_state = tuple(stored)
+                if not np.array_equal(sampler.random_state[1], stored[1]):
+                    log.warning("could not restore the random state of %s; "
+                                "the resumed chain will differ from an "
+                                "uninterrupted run", path)
             state = sampler.get_last_sample()
 
         taus: dict[int, np.ndarray] = {}
@@ -492,8 +506,10 @@ def run_sampler(log_prob: Callable, param_set: ParameterSet, settings,
 
         converged = False
         it = it0
-        if it0 > 0 and it0 % ce == 0:
-            converged = check(it0)
+        for k in range(ce, it0 + 1, ce):  # the checks an uninterrupted run
+            converged = check(k)          # made (its last one may be missing)
+            if converged:
+                break
         remaining = int(settings.max_steps) - it0
         if not converged and remaining > 0:
             from tqdm.auto import tqdm

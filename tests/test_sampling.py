@@ -121,6 +121,8 @@ def test_interrupt_then_resume_equals_uninterrupted(tmp_path):
     np.testing.assert_array_equal(out.chain, ref.chain)
     np.testing.assert_array_equal(out.log_prob, ref.log_prob)
     np.testing.assert_allclose(out.acceptance, ref.acceptance)
+    np.testing.assert_array_equal(out.tau_history, ref.tau_history)
+    assert out.tau_history[:, 0].tolist() == [30, 60, 90]
 
 
 def test_run_then_extend_equals_single_run(tmp_path):
