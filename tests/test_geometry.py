@@ -115,13 +115,20 @@ def test_rotation_matches_scipy(rot, inc, pa, rng):
 
 
 def test_face_on_pure_rotation_is_systemic():
-    # i -> 0: rotation is in the plane of the sky (DEVELOPERS.md frames)
-    for inc in (0.0, 1e-6):
+    # i -> 0: rotation is in the plane of the sky (DEVELOPERS.md frames), so
+    # v_los = vsys exactly at i = 0 and v_los - vsys = sin(i) cos(phi) v_phi
+    r = np.linspace(5, 300, 50)
+    phi = np.linspace(-3, 3, 50)
+    g0 = _geom(0.0, 1)
+    v0 = los_velocity(g0, r, phi, surface_point(g0, r, phi))
+    np.testing.assert_array_equal(v0, g0.vsys_kms)
+    for inc in (1e-3, 1e-6):
         g = _geom(inc, 1)
-        r = np.linspace(5, 300, 50)
-        phi = np.linspace(-3, 3, 50)
-        v = los_velocity(g, r, phi, surface_point(g, r, phi))
-        np.testing.assert_allclose(v, g.vsys_kms, atol=1e-4 * 1e-6 * 100 + 1e-12)
+        z = surface_point(g, r, phi)
+        dv = los_velocity(g, r, phi, z) - g.vsys_kms
+        expect = math.sin(math.radians(inc)) * np.cos(phi) * rotation_speed_kms(g, r, z)
+        np.testing.assert_allclose(dv, expect, rtol=1e-6, atol=1e-14)
+        assert np.max(np.abs(dv)) < 20.0 * math.radians(inc)
 
 
 @pytest.mark.parametrize("rot", [1, -1])
