@@ -169,3 +169,37 @@ def test_inputs_not_modified(rng):
     lik.log_prob(standin_params().sample_prior(rng, 3))
     for k in d:
         np.testing.assert_array_equal(d[k], copy[k])
+
+
+def test_from_deviations_uses_documented_fields(rng):
+    from types import SimpleNamespace
+    d = standin_data(rng)
+    # field names of deviations.Deviations as written in DEVELOPERS.md
+    dev = SimpleNamespace(r_au=d["r_au"], phi_rad=d["phi_rad"], a_r=d["a_r"],
+                          a_phi=d["a_phi"],
+                          grad_v_kms_per_arcsec=d["grad_kms_per_arcsec"],
+                          offset_arcsec=d["offset_arcsec"],
+                          sigma_arcsec=d["sigma_arcsec"], channel=d["channel"])
+    ps = standin_params()
+    a = KinkLikelihood.from_deviations(dev, standin_model, ps,
+                                       kind="student-t", dof=3.0)
+    b = KinkLikelihood(model=standin_model, param_set=ps, kind="student-t",
+                       dof=3.0, **d)
+    theta = ps.sample_prior(rng, 5)
+    np.testing.assert_array_equal(a.pointwise(theta), b.pointwise(theta))
+    np.testing.assert_array_equal(a.channel, d["channel"])
+
+
+def test_predict_offset_sign_convention(rng):
+    # DEVELOPERS.md: offset = -dv_los / |grad V_bg|, dv_los = a_r dv_r +
+    # a_phi dv_phi; a single point with a_r = 1, a_phi = 0, grad = 2 km/s/"
+    ps = standin_params()
+
+    def model(params, r, phi):
+        m = len(params["mass"])
+        return np.full((m, 1), 0.3), np.full((m, 1), 5.0)
+
+    lik = KinkLikelihood([100.0], [0.0], [1.0], [0.0], [2.0], [0.0], [0.01],
+                         model, ps)
+    off = lik.predict_offset(ps.pack(TRUTH))
+    assert off.shape == (1, 1) and np.isclose(off[0, 0], -0.15)
