@@ -689,12 +689,16 @@ def background_velocity(geom: DiskGeometry, x_arcsec, y_arcsec,
 
 
 def velocity_gradient(geom: DiskGeometry, x_arcsec, y_arcsec,
-                      surface="front", step_arcsec: float = 1.0e-3):
+                      surface="front", step_arcsec: float | None = None):
     """Sky gradient of :func:`background_velocity`.
 
-    Central differences with step ``step_arcsec`` (default 1 mas) along east
-    and north; the truncation error is ``~ (step / L)^2`` relative, with
-    ``L`` the distance to the disk centre (below 1e-4 for ``L > 0.1"``).
+    By default analytic: the layer height ``w(X, Y_flat)`` at the ray-surface
+    intersection is differentiated implicitly (``G(w) = w - h(r) = 0``, see
+    ``docs/physics/geometry.md``) and chained through
+    ``V = vsys + sin i v_phi(r, z) X / r``.  With ``step_arcsec`` set,
+    central differences with that step along east and north are used
+    instead (truncation error ``~ (step / L)^2`` relative at a distance
+    ``L`` from the centre; 1 mas gives < 1e-4 beyond 0.1").
 
     Parameters
     ----------
@@ -702,22 +706,59 @@ def velocity_gradient(geom: DiskGeometry, x_arcsec, y_arcsec,
     x_arcsec, y_arcsec : float or ndarray
         Offsets east and north, arcsec.
     surface : {'front', 'back'}
-    step_arcsec : float
-        Finite-difference step, arcsec (> 0).
+    step_arcsec : float or None
+        Finite-difference step, arcsec (> 0); None for the analytic form.
 
     Returns
     -------
     dv_dx, dv_dy : ndarray
-        km/s per arcsec along east and north; NaN where a stencil point is
-        off the layer.
+        km/s per arcsec along east and north; NaN off the layer (and, for
+        differences, where a stencil point is off the layer).
     """
-    h = float(step_arcsec)
-    if not h > 0:
-        raise PhysicsRangeError(f"step_arcsec must be > 0, got {step_arcsec}",
-                                key="step_arcsec", value=step_arcsec)
     x, y = np.broadcast_arrays(np.asarray(x_arcsec, dtype=float),
                                np.asarray(y_arcsec, dtype=float))
-    xs = np.stack([x + h, x - h, x, x])
-    ys = np.stack([y, y, y + h, y - h])
-    v = background_velocity(geom, xs, ys, surface)
-    return (v[0] - v[1]) / (2 * h), (v[2] - v[3]) / (2 * h)
+    if step_arcsec is not None:
+        h = float(step_arcsec)
+        if not h > 0:
+            raise PhysicsRangeError(f"step_arcsec must be > 0, got {step_arcsec}",
+                                    key="step_arcsec", value=step_arcsec)
+        xs = np.stack([x + h, x - h, x, x])
+        ys = np.stack([y, y, y + h, y - h])
+        v = background_velocity(geom, xs, ys, surface)
+        return (v[0] - v[1]) / (2 * h), (v[2] - v[3]) / (2 * h)
+
+    r, phi, z = sky_to_disk(geom, x, y, surface)
+    surf = geom.surface(surface)
+    side = 1 if surface == "front" else -1
+    i = geom.inclination_rad
+    tan_i, si, ci = math.tan(i), math.sin(i), math.cos(i)
+    pa = geom.position_angle_rad
+    sp, cp = math.sin(pa), math.cos(pa)
+    s = geom.rotation
+    D = geom.au_per_arcsec
+    X = r * np.cos(phi)
+    Y = r * np.sin(phi)
+    w = side * s * z                      # height on the layer's own side, >= 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        hp = surf.slope(r)
+        g_w = 1.0 + side * tan_i * hp * Y / r
+        w_X = hp * X / (r * g_w)          # implicit derivatives of w(X, Y_flat)
+        w_Yf = hp * Y / (r * g_w)
+        Y_X = -side * tan_i * w_X         # Y = Y_flat - side w tan i
+        Y_Yf = 1.0 - side * tan_i * w_Yf
+        r_X = (X + Y * Y_X) / r
+        r_Yf = Y * Y_Yf / r
+        d2 = r * r + z * z
+        vphi = rotation_speed_kms(geom, r, z)
+        cosp = X / r
+        # d ln v_phi = (1/r - 1.5 r / d2) dr - 1.5 w dw / d2  (z dz = w dw)
+        dlnv_dr = 1.0 / r - 1.5 * r / d2
+        dlnv_dw = -1.5 * w / d2
+        V_X = si * vphi * ((1.0 - cosp * r_X) / r
+                           + cosp * (dlnv_dr * r_X + dlnv_dw * w_X))
+        V_Yf = si * vphi * (-cosp * r_Yf / r
+                            + cosp * (dlnv_dr * r_Yf + dlnv_dw * w_Yf))
+    # X = sP e + cP n, Y_flat = s (cP e - sP n) / cos i, (e, n) = D (x, y)
+    dv_dx = D * (V_X * sp + V_Yf * s * cp / ci)
+    dv_dy = D * (V_X * cp - V_Yf * s * sp / ci)
+    return dv_dx, dv_dy

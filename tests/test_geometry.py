@@ -311,11 +311,16 @@ def test_velocity_gradient_flat_analytic(rot):
     dVdY = -1.5 * K * X * Y * rr ** -3.5
     gx = d * (dVdX * sp + dVdY * rot * cp / ci)
     gy = d * (dVdX * cp - dVdY * rot * sp / ci)
-    vx, vy = velocity_gradient(g, x, y)
-    # central differences, step 1 mas: relative error ~ (step / L)^2 of |grad V|
     gmag = np.hypot(gx, gy)
+    vx, vy = velocity_gradient(g, x, y)                 # analytic (implicit)
+    np.testing.assert_allclose(vx, gx, rtol=0, atol=1e-10 * gmag.max())
+    np.testing.assert_allclose(vy, gy, rtol=0, atol=1e-10 * gmag.max())
+    # central differences, step 1 mas: relative error ~ (step / L)^2 of |grad V|
+    vx, vy = velocity_gradient(g, x, y, step_arcsec=1e-3)
     np.testing.assert_allclose(vx, gx, rtol=0, atol=1e-5 * gmag.max())
     np.testing.assert_allclose(vy, gy, rtol=0, atol=1e-5 * gmag.max())
+    with pytest.raises(PhysicsRangeError):
+        velocity_gradient(g, x, y, step_arcsec=0.0)
 
 
 # ----------------------------------------------------------- validation ---
@@ -380,3 +385,25 @@ def test_round_trip_tapered(which, rng):
     assert np.all(np.isfinite(r2))
     x2, y2, _ = disk_to_sky(g, r2, phi2, z2)
     assert np.max(np.hypot(x2 - x[ok], y2 - y[ok])) < 1e-6 * PIXEL_ARCSEC
+
+
+@pytest.mark.parametrize("which", ["front", "back"])
+@pytest.mark.parametrize("rot", [1, -1])
+@pytest.mark.parametrize("inc", [0.0, 35.0, 70.0])
+def test_velocity_gradient_elevated(which, rot, inc, rng):
+    # implicit-differentiation gradient against central differences of
+    # background_velocity (step 0.1 mas; truncation ~ (step/L)^2 < 1e-6)
+    g = _geom(inc, rot, EmittingSurface(0.3, 1.25, taper_au=300.0))
+    x = rng.uniform(-2.0, 2.0, 400)
+    y = rng.uniform(-2.0, 2.0, 400)
+    gx, gy = velocity_gradient(g, x, y, which)
+    fx, fy = velocity_gradient(g, x, y, which, step_arcsec=1e-4)
+    if inc == 0.0:
+        # face-on: V = vsys everywhere (DEVELOPERS.md frames)
+        assert np.nanmax(np.abs(gx)) == 0.0 and np.nanmax(np.abs(gy)) == 0.0
+        return
+    ok = np.isfinite(fx) & np.isfinite(fy)
+    assert ok.mean() > 0.3
+    assert np.all(np.isfinite(gx[ok]))
+    err = np.hypot(gx[ok] - fx[ok], gy[ok] - fy[ok]) / np.hypot(fx[ok], fy[ok])
+    assert np.max(err) < 1e-4
