@@ -46,7 +46,9 @@ from scipy.spatial import cKDTree
 from .errors import ConfigError, KinkfitError
 
 __all__ = ["Ridges", "trace_ridges", "peak_along_cuts", "background_maps",
-           "SURFACE_CODES", "FWHM_PER_SIGMA"]
+           "position_sigma", "run_trace", "write_trace_file",
+           "read_trace_file", "geometry_from_dict", "SURFACE_CODES",
+           "FWHM_PER_SIGMA", "TRACE_FILE_NAME", "TRACE_SCHEMA_VERSION"]
 
 log = logging.getLogger(__name__)
 
@@ -671,3 +673,275 @@ def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
         out.meta["index"] = idx[order]
     log.info("traced %d ridge points (rejected: %s)", len(out), rejected)
     return out
+
+
+# ---------------------------------------------------------------------------
+# pipeline and result file
+# ---------------------------------------------------------------------------
+
+#: layout version of the trace result file
+TRACE_SCHEMA_VERSION = 1
+TRACE_FILE_NAME = "trace.h5"
+
+
+def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
+    """Trace, fit the background disk and measure the deviations.
+
+    The stage the planet fit builds on:
+
+    1. read the cube (``cfg.data``; or use ``cube``);
+    2. trace the ridges with the ``[disk]`` start geometry and, when
+       ``disk.fit_background``, alternate tracing and a robust background
+       fit until the geometry settles (:func:`kinkfit.diskfit.trace_and_fit`);
+    3. when ``trace.debias``, estimate the beam-smearing bias of every point
+       from a noise-free model of the fitted disk
+       (:func:`kinkfit.deviations.estimate_smearing_bias`), refit the
+       background with the bias removed, and re-estimate the bias at the
+       refitted geometry;
+    4. measure the deviations against the fitted disk with the bias removed
+       (:func:`kinkfit.deviations.measure_deviations`).
+
+    Parameters
+    ----------
+    cfg : kinkfit.config.KinkfitConfig
+    cube : kinkfit.cube.Cube, optional
+        Already-read cube (default: read ``cfg.data.cube``).
+    rounds : int
+        Maximum trace/fit rounds.
+    fit_background : bool, optional
+        Override ``cfg.disk.fit_background``.
+
+    Returns
+    -------
+    ridges : Ridges
+    fit : kinkfit.diskfit.BackgroundFit or None
+        None when ``disk.fit_background`` is false.
+    deviations : kinkfit.deviations.Deviations
+        ``deviations.meta['bias']`` describes the bias correction.
+    """
+    from .cube import read_cube
+    from .deviations import estimate_smearing_bias, measure_deviations
+    from .diskfit import fit_background as _fit, trace_and_fit
+    if cube is None:
+        centre = None
+        if cfg.data.centre_ra_deg is not None and cfg.data.centre_dec_deg is not None:
+            centre = (cfg.data.centre_ra_deg, cfg.data.centre_dec_deg)
+        cube = read_cube(cfg.data.cube, centre=centre,
+                         line_free=cfg.data.line_free_channels)
+    geom0 = cfg.geometry()
+    settings = cfg.trace
+    do_fit = cfg.disk.fit_background if fit_background is None else fit_background
+    if do_fit:
+        ridges, fit = trace_and_fit(cube, geom0, settings, rounds=rounds)
+        geom = fit.geometry
+    else:
+        ridges = trace_ridges(cube, geom0, settings)
+        fit, geom = None, geom0
+    if len(ridges) == 0:
+        raise KinkfitError("no ridge points were traced: check the [disk] "
+                           "start geometry and trace.min_snr",
+                           file=getattr(cfg, "path", None), key="trace.min_snr",
+                           value=settings.min_snr)
+    bias = None
+    if settings.debias:
+        bias = estimate_smearing_bias(cube, ridges, geom, settings)
+        if fit is not None:
+            fit = dataclasses.replace(
+                _fit(ridges, geom, fit.names, bias=bias.offset_arcsec),
+                rounds=fit.rounds)
+            geom = fit.geometry
+            bias = estimate_smearing_bias(cube, ridges, geom, settings,
+                                          emission=bias.emission)
+    dev = measure_deviations(ridges, fit if fit is not None else geom, bias=bias)
+    dev.meta["geometry"] = _geom_dict(geom)
+    dev.meta["cube_sha256"] = cube.provenance.get("sha256", "")
+    dev.meta["cube_path"] = str(cube.provenance.get("path", ""))
+    return ridges, fit, dev
+
+
+def _geom_dict(geom) -> dict:
+    def surf(s):
+        return None if s is None else {"aspect": s.aspect, "flaring": s.flaring,
+                                       "r_ref_au": s.r_ref_au,
+                                       "taper_au": s.taper_au}
+    return {"mstar_msun": geom.mstar_msun, "distance_pc": geom.distance_pc,
+            "inclination_deg": geom.inclination_deg,
+            "position_angle_deg": geom.position_angle_deg,
+            "rotation": geom.rotation, "x0_arcsec": geom.x0_arcsec,
+            "y0_arcsec": geom.y0_arcsec, "vsys_kms": geom.vsys_kms,
+            "front": surf(geom.front), "back": surf(geom.back),
+            "r_max_au": geom.r_max_au if math.isfinite(geom.r_max_au) else None,
+            "r_min_au": geom.r_min_au}
+
+
+def geometry_from_dict(d: dict):
+    """Inverse of the geometry record stored in a trace file."""
+    from .geometry import DiskGeometry, EmittingSurface
+    d = dict(d)
+    for k in ("front", "back"):
+        d[k] = None if d[k] is None else EmittingSurface(**d[k])
+    if d["front"] is None:
+        d["front"] = EmittingSurface(0.0)
+    if d.get("r_max_au") is None:
+        d["r_max_au"] = math.inf
+    return DiskGeometry(**d)
+
+
+def _json(obj) -> str:
+    import json
+
+    def default(o):
+        if isinstance(o, np.ndarray):
+            return o.tolist()
+        if isinstance(o, (np.integer,)):
+            return int(o)
+        if isinstance(o, (np.floating,)):
+            return float(o)
+        return str(o)
+    return json.dumps(obj, default=default)
+
+
+def write_trace_file(path, ridges, fit, deviations, *, cfg=None,
+                     overwrite: bool = False):
+    """Write the trace stage to HDF5 (atomic; refuses to overwrite).
+
+    Layout (``schema = 'kinkfit-trace'``, ``schema_version`` 1)::
+
+        /                  attrs: schema, schema_version, kinkfit_version,
+                           created (UTC ISO), cube_path, cube_sha256,
+                           trace_settings (JSON), config_text
+        /ridges/<field>    (n,) per-point arrays of Ridges; attrs meta (JSON)
+        /background        attrs: names, values, errors, start, scatter,
+                           loss, f_scale, success, message, rounds,
+                           geometry (JSON, best fit); datasets covariance,
+                           residuals, inlier.  Absent if not fitted.
+        /deviations/<f>    (n,) r_au, phi_rad, z_au, a_r, a_phi,
+                           grad_kms_per_arcsec, offset_arcsec,
+                           offset_raw_arcsec, bias_arcsec, sigma_arcsec;
+                           attrs meta (JSON), geometry (JSON)
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+    ridges : Ridges
+    fit : kinkfit.diskfit.BackgroundFit or None
+    deviations : kinkfit.deviations.Deviations
+    cfg : kinkfit.config.KinkfitConfig, optional
+        Recorded (settings and config text).
+    overwrite : bool
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    import datetime
+    import os
+    import tempfile
+    from pathlib import Path
+
+    import h5py
+
+    from . import __version__
+    from .errors import ResultFileError
+    path = Path(path)
+    if path.exists() and not overwrite:
+        raise ResultFileError(f"{path} exists; set output.overwrite = true "
+                              f"(or pass --force) to replace it", file=path,
+                              key="output.overwrite", value=False)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, suffix=".h5.tmp")
+    os.close(fd)
+    kw = dict(compression="gzip", compression_opts=4, shuffle=True)
+    try:
+        with h5py.File(tmp, "w", track_order=True) as f:
+            f.attrs["schema"] = "kinkfit-trace"
+            f.attrs["schema_version"] = TRACE_SCHEMA_VERSION
+            f.attrs["kinkfit_version"] = __version__
+            f.attrs["created"] = datetime.datetime.now(
+                datetime.timezone.utc).isoformat(timespec="seconds")
+            f.attrs["cube_path"] = str(deviations.meta.get("cube_path", ""))
+            f.attrs["cube_sha256"] = str(deviations.meta.get("cube_sha256", ""))
+            if cfg is not None:
+                f.attrs["trace_settings"] = _json(dataclasses.asdict(cfg.trace))
+                f.attrs["config_text"] = cfg.text
+            g = f.create_group("ridges", track_order=True)
+            for k, a in ridges.as_dict().items():
+                g.create_dataset(k, data=a, **(kw if a.size > 1 else {}))
+            g.attrs["meta"] = _json(ridges.meta)
+            if fit is not None:
+                b = f.create_group("background", track_order=True)
+                b.attrs["names"] = list(fit.names)
+                for k in ("values", "errors", "start"):
+                    b.attrs[k] = np.asarray(getattr(fit, k), float)
+                for k in ("scatter", "f_scale"):
+                    b.attrs[k] = float(getattr(fit, k))
+                b.attrs["loss"] = fit.loss
+                b.attrs["success"] = bool(fit.success)
+                b.attrs["message"] = fit.message
+                b.attrs["rounds"] = int(fit.rounds)
+                b.attrs["nfev"] = int(fit.nfev)
+                b.attrs["geometry"] = _json(_geom_dict(fit.geometry))
+                b.create_dataset("covariance", data=fit.covariance)
+                b.create_dataset("residuals", data=fit.residuals)
+                b.create_dataset("inlier", data=fit.inlier)
+            d = f.create_group("deviations", track_order=True)
+            dd = deviations.as_dict()
+            from .deviations import _DEV_FIELDS
+            for k in _DEV_FIELDS:
+                d.create_dataset(k, data=dd[k], **(kw if dd[k].size > 1 else {}))
+            d.attrs["meta"] = _json(deviations.meta)
+            if fit is not None:
+                d.attrs["geometry"] = _json(_geom_dict(fit.geometry))
+            elif "geometry" in deviations.meta:
+                d.attrs["geometry"] = _json(deviations.meta["geometry"])
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+    return path
+
+
+def read_trace_file(path):
+    """Read a file written by :func:`write_trace_file`.
+
+    Returns
+    -------
+    ridges : Ridges
+    background : dict or None
+        ``names, values, errors, covariance, residuals, inlier, geometry``
+        (a :class:`kinkfit.geometry.DiskGeometry`) and the scalar attrs.
+    deviations : kinkfit.deviations.Deviations
+    """
+    import json
+    from pathlib import Path
+
+    import h5py
+
+    from .deviations import _DEV_FIELDS, Deviations
+    from .errors import ResultFileError
+    path = Path(path)
+    try:
+        f = h5py.File(path, "r")
+    except (OSError, FileNotFoundError) as exc:
+        raise ResultFileError(f"{path}: cannot open trace file ({exc})",
+                              file=path) from None
+    with f:
+        if f.attrs.get("schema") != "kinkfit-trace":
+            raise ResultFileError(f"{path} is not a kinkfit trace file",
+                                  file=path, key="schema")
+        g = f["ridges"]
+        ridges = Ridges.from_dict({k: g[k][()] for k in g},
+                                  json.loads(g.attrs["meta"]))
+        background = None
+        if "background" in f:
+            b = f["background"]
+            background = {k: b.attrs[k] for k in b.attrs}
+            background["names"] = tuple(str(n) for n in b.attrs["names"])
+            background["geometry"] = geometry_from_dict(json.loads(b.attrs["geometry"]))
+            for k in ("covariance", "residuals", "inlier"):
+                background[k] = b[k][()]
+        d = f["deviations"]
+        dev = Deviations(ridges, **{k: d[k][()] for k in _DEV_FIELDS},
+                         meta=json.loads(d.attrs["meta"]))
+    return ridges, background, dev
