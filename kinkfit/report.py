@@ -171,15 +171,20 @@ def write_summary(result, folder, stem: str = "summary") -> list[Path]:
 
 
 def _loglike_max(result) -> float:
+    """Largest log-likelihood known: MAP sample or a stored pointwise row."""
     pw = np.asarray(result.pointwise_loglike)
-    return float(np.max(pw.sum(axis=1))) if pw.size else float("nan")
+    vals = [result.map_loglike] + ([float(np.max(pw.sum(axis=1)))]
+                                   if pw.size else [])
+    vals = [v for v in vals if np.isfinite(v)]
+    return max(vals) if vals else float("nan")
 
 
 def baseline_comparison(result, baseline) -> dict[str, float]:
     """Planet fit vs planet-free baseline of the same traced points.
 
-    Uses the largest total log-likelihood among the stored pointwise
-    samples of each fit (an approximation of the maximum likelihood) and
+    Uses the largest total log-likelihood known for each fit (its MAP
+    sample or a stored pointwise sample; an approximation of the maximum
+    likelihood, typically low by O(1)) and
     the Bayesian information criterion (Schwarz 1978),
     ``BIC = k ln n - 2 ln L_max``.
 
@@ -254,6 +259,12 @@ def _convergence_text(result) -> str:
             f"{result.counters.get('evaluated', 0)}; rejected (−inf): "
             + (", ".join(f"{k} {v}" for k, v in rejected.items())
                if rejected else "none") + ".")
+    tm = result.timings
+    if tm:
+        lines.append(f"- Sampling time (last run): {tm.get('wall_s', 0):.1f} s"
+                     f" wall, {tm.get('ms_per_evaluation', float('nan')):.3g}"
+                     f" ms per log-probability evaluation, "
+                     f"{int(tm.get('workers', 1))} process(es).")
     if not result.converged:
         lines.append("- **The chain did not meet the convergence criterion: "
                      "run longer (the checkpoint resumes) before using these "

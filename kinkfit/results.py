@@ -32,6 +32,7 @@ path                               content
 ``/posterior/samples``             (n, ndim) flat samples after burn/thin
 ``/posterior/log_prob``            (n,) their log-posterior
 ``/posterior/map_theta``           (ndim,) highest-posterior chain sample
+``/posterior`` attrs               ``map_loglike``: its log-likelihood
 ``/walkers/chain``                 (n_steps, nwalkers, ndim) full chain
 ``/walkers/log_prob``              (n_steps, nwalkers)
 ``/walkers/acceptance``            (nwalkers,) acceptance fractions
@@ -126,6 +127,7 @@ class FitResult:
     thin: int
     map_theta: np.ndarray
     data: dict = field(default_factory=dict)
+    map_loglike: float = float("nan")
     pointwise_loglike: np.ndarray = field(
         default_factory=lambda: np.zeros((0, 0)))
     pointwise_index: np.ndarray = field(
@@ -286,6 +288,7 @@ def assemble_result(outcome, likelihood, *, damping: str,
     pred = likelihood.predict_offset(samples[idx])
     median_off = np.nanmedian(pred, axis=0) if pred.size else pred
     map_off = likelihood.predict_offset(map_theta)[0]
+    map_ll = float(likelihood.log_likelihood(map_theta)[0])
     data = {name: np.array(likelihood.data[name]) for name in _TRACED_CORE}
     if likelihood.channel is not None:
         data["channel"] = np.array(likelihood.channel, dtype=np.int64)
@@ -317,7 +320,7 @@ def assemble_result(outcome, likelihood, *, damping: str,
         tau_history=np.array(outcome.tau_history, dtype=float),
         converged=bool(outcome.converged), n_steps=int(outcome.n_steps),
         burn=int(outcome.burn), thin=int(outcome.thin), map_theta=map_theta,
-        data=data, pointwise_loglike=pw, pointwise_index=idx,
+        map_loglike=map_ll, data=data, pointwise_loglike=pw, pointwise_index=idx,
         map_offset_arcsec=map_off, median_offset_arcsec=median_off,
         fixed=fixed, truths={k: float(v) for k, v in (truths or {}).items()},
         background={k: float(v) for k, v in (background or {}).items()},
@@ -389,6 +392,7 @@ def _write(f, r: FitResult):
     _put(post, "samples", r.samples)
     _put(post, "log_prob", r.sample_log_prob)
     _put(post, "map_theta", r.map_theta)
+    post.attrs["map_loglike"] = float(r.map_loglike)
 
     w = f.create_group("walkers", track_order=True)
     _put(w, "chain", r.chain)
@@ -504,6 +508,7 @@ def _read(f, path) -> FitResult:
         converged=bool(w.attrs["converged"]), n_steps=int(w.attrs["n_steps"]),
         burn=int(w.attrs["burn"]), thin=int(w.attrs["thin"]),
         map_theta=arr("posterior/map_theta"),
+        map_loglike=float(f["posterior"].attrs["map_loglike"]),
         data={k: v[()] for k, v in f["traced"].items()},
         pointwise_loglike=arr("pointwise/loglike"),
         pointwise_index=arr("pointwise/sample_index"),

@@ -75,6 +75,7 @@ def test_assembled_content(fit):
     res, lik, out = fit
     # MAP is the highest log-probability sample of the chain
     assert np.isclose(lik.log_prob(res.map_theta[None])[0], out.log_prob.max())
+    assert np.isclose(res.map_loglike, lik.log_likelihood(res.map_theta)[0])
     # pointwise rows are the likelihood of the recorded samples (oracle:
     # KinkLikelihood.pointwise, itself checked against scipy.stats)
     np.testing.assert_allclose(res.pointwise_loglike,
