@@ -68,7 +68,7 @@ SURFACES = ("front", "back")
 # (8 per factor of two) up to 2**12 h.
 _SCAN = np.concatenate([np.linspace(0.0, 2.0, 41)[1:],
                         np.geomspace(2.0, 2.0 ** 12, 11 * 8 + 1)[1:]])
-_BISECTIONS = 60
+_MAX_ITER = 60       # golden-section steps; cap on Newton/bisection polish steps
 
 
 def _finite(name, value):
@@ -488,7 +488,7 @@ def _solve_height(surf: EmittingSurface, X, Yflat, tan_i, side,
         b = sc * grid[np.minimum(jj + 1, grid.size - 1)]
         Xm, Ym = Xs[miss], Ys[miss]
         ratio = (math.sqrt(5.0) - 1.0) / 2.0
-        for _ in range(_BISECTIONS):
+        for _ in range(_MAX_ITER):
             c = b - ratio * (b - a)
             d = a + ratio * (b - a)
             left = G(c, Xm, Ym) > G(d, Xm, Ym)
@@ -506,7 +506,7 @@ def _solve_height(surf: EmittingSurface, X, Yflat, tan_i, side,
     w = 0.5 * (a + b)
     tol = 4.0 * np.finfo(float).eps * np.maximum(b, scale[idx])
     live = np.arange(idx.size)
-    for _ in range(_BISECTIONS):
+    for _ in range(_MAX_ITER):
         wl, al, bl = w[live], a[live], b[live]
         Xl, Yl = Xf[live], Yff[live]
         Y = Yl - side * wl * tan_i
