@@ -48,6 +48,22 @@ def _cmd_montage(args) -> int:
     return 0
 
 
+def _cmd_batch(args) -> int:
+    from .batch import run_batch
+    run = run_batch(args.manifest, scheduler=args.scheduler,
+                    workers=args.workers, resume=args.resume,
+                    restart=args.restart)
+    print(f"{len(run.ran)} task(s) run, {len(run.skipped)} already complete; "
+          f"state in {run.state_path}")
+    for path in run.products:
+        print(f"wrote {path}")
+    for name in run.failed:
+        s = run.summaries[name]
+        print(f"kinkfit: error: task {name} {s.get('status', 'failed')}: "
+              f"{s.get('error') or 'no result'}", file=sys.stderr)
+    return 1 if run.failed else 0
+
+
 def _cmd_not_ready(args) -> int:
     raise KinkfitError(f"command '{args.command}' is not available in this "
                        f"version of kinkfit")
@@ -99,6 +115,20 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--channels", type=int, default=24,
                    help="number of channels shown, evenly spaced (default 24)")
     p.set_defaults(handler=_cmd_montage)
+
+    p = sub.add_parser("batch", parents=[common],
+                       help="run the fits of a survey manifest as Dask tasks")
+    p.add_argument("manifest", help="TOML survey manifest")
+    p.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="address of a running Dask scheduler (default: a "
+                        "local cluster)")
+    p.add_argument("--workers", type=int, default=2,
+                   help="local worker processes (default 2)")
+    p.add_argument("--resume", action="store_true",
+                   help="continue: skip complete tasks, resume the others")
+    p.add_argument("--restart", action="store_true",
+                   help="start over: rerun every task, replace results")
+    p.set_defaults(handler=_cmd_batch)
 
     return parser
 
