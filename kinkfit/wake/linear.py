@@ -308,7 +308,7 @@ def _exp_convolutions(f, dx):
 
 
 def _k_zero_mode(x, eps):
-    """``k -> 0`` limit: ``sigma - sigma'' = Phi0''``, ``v = (sigma' + Phi0')/2``.
+    """``k -> 0`` mode: ``sigma - sigma'' = Phi0''``, ``v = (sigma' + Phi0')/2``.
 
     ``Phi0`` is the x-dependent part of ``Phi_k`` as ``k -> 0``
     (``2 ln sqrt(x^2 + eps^2)``); the solution decaying on both sides is the
@@ -317,11 +317,8 @@ def _k_zero_mode(x, eps):
     """
     r2 = x * x + eps * eps
     phi0_p = 2.0 * x / r2
-    phi0_pp = 2.0 * (eps * eps - x * x) / (r2 * r2)
-    # sigma'' - sigma = -Phi0''  ->  sigma = (1/2) int e^{-|x-x'|} Phi0''
-    # Integrate by parts once for accuracy: (1/2) int sgn(x'-x) e^{-|x-x'|}
-    # ... we use a direct quadrature on a fine auxiliary grid extending far.
-    # auxiliary grid: |x'| <= 200 h (e^-200 negligible), step <= eps/20
+    # sigma'' - sigma = -Phi0''  ->  sigma = (1/2) int e^{-|x-x'|} Phi0'',
+    # by quadrature on an auxiliary grid: |x'| <= 200 h (e^-200 negligible), step <= eps/20
     dxf = min(1e-3, eps / 20.0)
     nf = 2 * int(math.ceil(200.0 / dxf)) + 1
     xf = np.linspace(-200.0, 200.0, nf)
@@ -526,7 +523,8 @@ def mach_line_y(x_h) -> np.ndarray:
     ``dy/dx = -sgn(x) sqrt(9 x^2/4 - 1)`` starting at the sonic point
     ``|x| = 2/3``::
 
-        y = -sgn(x) [ |x|/2 sqrt(9x^2/4 - 1) - (1/3) ln(3|x|/2 + sqrt(9x^2/4 - 1)) ]
+        y = -sgn(x) [ |x|/2 sqrt(9x^2/4 - 1)
+                      - (1/3) ln(3|x|/2 + sqrt(9x^2/4 - 1)) ]
 
     which tends to ``-(3/4) x|x| + sgn(x) [1/6 + (1/3) ln(3|x|)]``.  Inside
     the sonic points (``|x| < 2/3``) there is no wave and NaN is returned.
