@@ -33,7 +33,7 @@ def _cmd_inspect(args) -> int:
 
 def _cmd_synth(args) -> int:
     from .config import load_config
-    from .synth import synth_from_config
+    from .scenario import synth_from_config
     cfg = load_config(args.config)
     path = synth_from_config(cfg, output=args.output, overwrite=args.force)
     print(f"wrote {path}")
@@ -62,6 +62,75 @@ def _cmd_batch(args) -> int:
         print(f"kinkfit: error: task {name} {s.get('status', 'failed')}: "
               f"{s.get('error') or 'no result'}", file=sys.stderr)
     return 1 if run.failed else 0
+
+
+def _cmd_trace(args) -> int:
+    from .config import load_config
+    from .trace import TRACE_FILE_NAME, run_trace, write_trace_file
+    cfg = load_config(args.config)
+    out = args.output or (cfg.output.folder / TRACE_FILE_NAME)
+    overwrite = args.force or cfg.output.overwrite
+    from pathlib import Path
+    if Path(out).exists() and not overwrite:
+        from .errors import ResultFileError
+        raise ResultFileError(f"{out} exists; set output.overwrite = true or "
+                              f"pass --force", file=out, key="output.overwrite")
+    ridges, fit, dev = run_trace(cfg)
+    path = write_trace_file(out, ridges, fit, dev, cfg=cfg, overwrite=overwrite)
+    print(f"traced {len(ridges)} ridge points; rejected: "
+          f"{ridges.meta.get('rejected')}")
+    if fit is not None:
+        print(fit.summary())
+    print(f"wrote {path}")
+    return 0
+
+
+def _cmd_disk(args) -> int:
+    from .config import load_config
+    from .trace import run_trace
+    cfg = load_config(args.config)
+    out = args.output or (cfg.output.folder / "background.ecsv")
+    overwrite = args.force or cfg.output.overwrite
+    from pathlib import Path
+    from .errors import ResultFileError
+    if Path(out).exists() and not overwrite:
+        raise ResultFileError(f"{out} exists; set output.overwrite = true or "
+                              f"pass --force", file=out, key="output.overwrite")
+    _, fit, _ = run_trace(cfg, fit_background=True)
+    print(fit.summary())
+    Path(out).parent.mkdir(parents=True, exist_ok=True)
+    fit.table().write(out, format="ascii.ecsv", overwrite=True)
+    print(f"wrote {out}")
+    return 0
+
+
+def _cmd_fit(args) -> int:
+    from .config import load_config
+    from .pipeline import run_fit
+    cfg = load_config(args.config)
+    run = run_fit(cfg, force=args.force, resume=not args.restart,
+                  workers=args.workers,
+                  progress=False if args.no_progress else None)
+    for name, path in run.results.items():
+        state = "converged" if run.converged[name] else "NOT converged"
+        print(f"{name:>10}: {path}  ({state})")
+        print(f"{'':>10}  report: {run.reports[name]}")
+    if run.comparison is not None:
+        print(f"comparison: {run.comparison}")
+    print(f"done in {run.seconds:.1f} s; outputs in {run.output_folder}")
+    if not all(run.converged.values()):
+        print("kinkfit: warning: some chains did not converge; see the "
+              "reports (exit status 1)", file=sys.stderr)
+        return 1
+    return 0
+
+
+def _cmd_report(args) -> int:
+    from .pipeline import regenerate_report
+    paths = regenerate_report(args.result, output=args.output, cube=args.cube)
+    for p in paths:
+        print(f"wrote {p}")
+    return 0
 
 
 def _cmd_not_ready(args) -> int:
@@ -104,6 +173,51 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true",
                    help="overwrite an existing file")
     p.set_defaults(handler=_cmd_synth)
+
+    p = sub.add_parser("trace", parents=[common],
+                       help="trace the ridges, fit the background disk, "
+                            "measure the deviations (HDF5)")
+    p.add_argument("config", help="TOML config")
+    p.add_argument("-o", "--output", default=None,
+                   help="output HDF5 (default: <output.folder>/trace.h5)")
+    p.add_argument("--force", action="store_true",
+                   help="overwrite an existing file")
+    p.set_defaults(handler=_cmd_trace)
+
+    p = sub.add_parser("disk", parents=[common],
+                       help="fit the background disk to the traced ridges "
+                            "and print it (ECSV)")
+    p.add_argument("config", help="TOML config")
+    p.add_argument("-o", "--output", default=None,
+                   help="output ECSV (default: <output.folder>/background.ecsv)")
+    p.add_argument("--force", action="store_true",
+                   help="overwrite an existing file")
+    p.set_defaults(handler=_cmd_disk)
+
+    p = sub.add_parser("fit", parents=[common],
+                       help="the whole job: background disk, tracing, planet "
+                            "posterior(s), reports")
+    p.add_argument("config", help="TOML config")
+    p.add_argument("--force", action="store_true",
+                   help="refit and replace existing results")
+    p.add_argument("--restart", action="store_true",
+                   help="ignore unfinished checkpoints and start afresh")
+    p.add_argument("--workers", type=int, default=None,
+                   help="processes for the likelihood (default: "
+                        "sampler.workers)")
+    p.add_argument("--no-progress", action="store_true",
+                   help="no progress bar")
+    p.set_defaults(handler=_cmd_fit)
+
+    p = sub.add_parser("report", parents=[common],
+                       help="regenerate tables, figures and report.md from a "
+                            "result file")
+    p.add_argument("result", help="result HDF5 written by 'kinkfit fit'")
+    p.add_argument("-o", "--output", default=None,
+                   help="output folder (default: next to the result)")
+    p.add_argument("--cube", default=None,
+                   help="FITS cube to check against the recorded checksum")
+    p.set_defaults(handler=_cmd_report)
 
     p = sub.add_parser("montage", parents=[common],
                        help="draw a cube's channel maps as one PNG")

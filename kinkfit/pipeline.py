@@ -1,0 +1,396 @@
+"""The main job, end to end: ``kinkfit fit CONFIG``.
+
+:func:`run_fit` reads the cube, fits the background disk, traces the ridges
+and measures the deviations (once, shared by every assumption), then for each
+damping assumption of ``wake.damping`` -- and the planet-free baseline when
+``wake.baseline`` -- builds the likelihood on the fast wake model, finds a
+start, samples with emcee (checkpointed, resumable), writes one HDF5 result
+and its report, and finally the comparison across assumptions.
+
+Output folder layout (``output.folder``)::
+
+    trace.h5                      traced ridges, background fit, deviations
+    fit_<assumption>.h5           one result per assumption (kinkfit.results)
+    fit_<assumption>.chain.h5     the sampler's working checkpoint
+    <assumption>/                 report.md, summary.{ecsv,csv,tex,md}, figures
+    gallery.png, deviations.png   channel gallery with model contours; map
+    comparison/                   products of kinkfit.compare (several fits)
+
+Re-running the same config resumes: a finished result whose recorded config
+text and cube checksum match is kept (its report is regenerated), an
+unfinished one continues from its checkpoint.  A result that does not match
+is never overwritten unless ``--force`` / ``output.overwrite``.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .config import KinkfitConfig
+from .errors import ResultFileError
+
+__all__ = ["FitRun", "run_fit", "fit_assumption", "truths_from_header",
+           "BASELINE"]
+
+log = logging.getLogger(__name__)
+
+#: name of the planet-free baseline in file names and tables
+BASELINE = "baseline"
+
+
+@dataclass
+class FitRun:
+    """What :func:`run_fit` produced.
+
+    Attributes
+    ----------
+    output_folder : Path
+    results : dict of str -> Path
+        Assumption (damping name or ``"baseline"``) -> result HDF5.
+    converged : dict of str -> bool
+    seconds : float
+        Wall time of this call.
+    reports : dict of str -> Path
+        Assumption -> ``report.md``.
+    trace_file : Path
+    """
+
+    output_folder: Path
+    results: dict = field(default_factory=dict)
+    converged: dict = field(default_factory=dict)
+    seconds: float = 0.0
+    reports: dict = field(default_factory=dict)
+    trace_file: Path | None = None
+    comparison: Path | None = None
+
+
+def truths_from_header(cube) -> dict:
+    """Injected planet recorded by :mod:`kinkfit.scenario` (empty if none).
+
+    Returns
+    -------
+    dict : canonical-unit values keyed by fit-parameter name, plus
+    ``"damping"`` (str).
+    """
+    cards = getattr(cube, "provenance", {}) or {}
+    hdr = cards.get("truth_cards") or cards.get("header") or {}
+    if not hdr:
+        try:
+            from astropy.io import fits
+            hdr = fits.getheader(cube.provenance["path"])
+        except Exception:  # noqa: BLE001 - provenance without a readable file
+            return {}
+    if not hdr.get("KFPLANET", False):
+        return {}
+    out = {"mass": float(hdr["KFMASS"]), "radius": float(hdr["KFRADIUS"]),
+           "azimuth": float(hdr["KFAZIM"]),
+           "aspect_ratio": float(hdr["KFASPECT"]),
+           "damping": str(hdr["KFDAMP"])}
+    if out["damping"] == "viscous":
+        out["alpha"] = float(hdr["KFALPHA"])
+    elif out["damping"] == "efold" and float(hdr["KFEFOLD"]) > 0:
+        out["efold"] = float(hdr["KFEFOLD"])
+    return out
+
+
+def _background_dicts(fit):
+    if fit is None:
+        return {}, {}
+    values = {n: float(v) for n, v in zip(fit.names, fit.values)}
+    sigma = {n: float(e) for n, e in zip(fit.names, fit.errors)}
+    return values, sigma
+
+
+def _matches(path: Path, cfg: KinkfitConfig, cube_sha: str, name: str):
+    """Is the finished result at ``path`` from this config and cube?"""
+    from .results import read_result
+    res = read_result(path)
+    same = (res.config_text == cfg.text and res.cube_sha256 == cube_sha)
+    if not same:
+        raise ResultFileError(
+            f"{path.name} exists from a different config or cube; use "
+            f"--force to replace it (assumption '{name}')", file=path)
+    return res
+
+
+def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
+                   folder: Path, cube_path: str, cube_sha: str,
+                   background=None, truths=None, force=False, resume=True,
+                   workers=None, progress=None):
+    """Sample the posterior of one assumption and write its result.
+
+    Parameters
+    ----------
+    cfg : KinkfitConfig
+    deviations : kinkfit.deviations.Deviations
+        The traced data (shared by all assumptions).
+    geometry : kinkfit.geometry.DiskGeometry
+        Fitted background disk (its stellar mass scales the wake).
+    name : str
+        A damping assumption or :data:`BASELINE`.
+
+    Returns
+    -------
+    (Path, FitResult)
+    """
+    from dataclasses import replace
+
+    from .likelihood import KinkLikelihood
+    from .results import assemble_result, write_result
+    from .sampling import find_start, run_sampler
+    from .scenario import wake_disk
+
+    path = folder / f"fit_{name}.h5"
+    checkpoint = folder / f"fit_{name}.chain.h5"
+    overwrite = force or cfg.output.overwrite
+    if path.exists() and not overwrite:
+        res = _matches(path, cfg, cube_sha, name)
+        log.info("%s: finished result found, kept", path.name)
+        return path, res
+
+    with_planet = name != BASELINE
+    damping = name if with_planet else cfg.wake.damping[0]
+    pset = cfg.parameter_set(damping, with_planet=with_planet)
+    if with_planet:
+        from .wake.emulator import make_fit_model
+        model = make_fit_model(wake_disk(cfg, mstar_msun=geometry.mstar_msun),
+                               damping)
+    else:
+        model = None
+    like = KinkLikelihood.from_deviations(
+        deviations, model, pset, kind=cfg.likelihood.kind,
+        dof=cfg.likelihood.dof)
+    settings = cfg.sampler
+    if workers is not None or progress is not None:
+        settings = replace(settings,
+                           workers=settings.workers if workers is None
+                           else int(workers),
+                           progress=settings.progress if progress is None
+                           else bool(progress))
+    t0 = time.perf_counter()
+    rng = np.random.default_rng(settings.seed)
+    start = None
+    if not (resume and checkpoint.exists() and not force):
+        start = find_start(like.log_prob, pset, rng)
+    outcome = run_sampler(like.log_prob, pset, settings, checkpoint,
+                          initial=start, rng_seed=settings.seed,
+                          resume=resume and not force)
+    bg, bg_sigma = _background_dicts(background)
+    extra = {k: np.asarray(getattr(deviations, k))
+             for k in ("x_arcsec", "y_arcsec", "velocity_kms", "surface")
+             if hasattr(deviations, k)}
+    result = assemble_result(
+        outcome, like, damping=name, config_text=cfg.text,
+        cube_path=cube_path, cube_sha256=cube_sha, title=cfg.title,
+        background=bg, background_sigma=bg_sigma,
+        truths={k: v for k, v in (truths or {}).items()
+                if k in pset.names} or None,
+        extra_data=extra)
+    write_result(path, result, overwrite=True)
+    log.info("%s: %d steps in %.1f s, converged=%s", path.name,
+             outcome.n_steps, time.perf_counter() - t0, outcome.converged)
+    return path, result
+
+
+def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
+            workers: int | None = None, progress: bool | None = None
+            ) -> FitRun:
+    """Run the whole job for one config (see the module docstring).
+
+    Parameters
+    ----------
+    cfg : KinkfitConfig
+    force : bool
+        Refit and replace existing results and checkpoints.
+    resume : bool
+        Continue unfinished checkpoints (default).
+    workers : int, optional
+        Processes for the likelihood (overrides ``sampler.workers``).
+    progress : bool, optional
+        Progress bar (overrides ``sampler.progress``).
+
+    Returns
+    -------
+    FitRun
+    """
+    from .cube import read_cube
+    from .report import write_report
+    from .results import file_sha256
+    from .trace import run_trace, write_trace_file
+
+    t0 = time.perf_counter()
+    folder = Path(cfg.output.folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    centre = None
+    if cfg.data.centre_ra_deg is not None:
+        centre = (cfg.data.centre_ra_deg, cfg.data.centre_dec_deg)
+    cube = read_cube(cfg.data.cube, centre=centre,
+                     line_free=cfg.data.line_free_channels)
+    cube_sha = cube.provenance.get("sha256") or file_sha256(cfg.data.cube)
+    truths = truths_from_header(cube)
+
+    ridges, fit, deviations = run_trace(cfg, cube=cube)
+    geometry = fit.geometry if fit is not None else cfg.geometry()
+    trace_file = folder / "trace.h5"
+    write_trace_file(trace_file, ridges, fit, deviations, cfg=cfg,
+                     overwrite=True)
+
+    run = FitRun(output_folder=folder, trace_file=trace_file)
+    names = list(cfg.wake.damping) + ([BASELINE] if cfg.wake.baseline else [])
+    results = {}
+    for name in names:
+        path, res = fit_assumption(
+            cfg, deviations, geometry, name, folder=folder,
+            cube_path=str(cfg.data.cube), cube_sha=cube_sha, background=fit,
+            truths=truths, force=force, resume=resume, workers=workers,
+            progress=progress)
+        run.results[name] = path
+        run.converged[name] = bool(res.converged)
+        results[name] = res
+    baseline = results.get(BASELINE)
+    for name, res in results.items():
+        report_paths = write_report(
+            res, folder / name,
+            baseline=baseline if name != BASELINE else None,
+            source=run.results[name].name)
+        run.reports[name] = [p for p in report_paths
+                             if Path(p).name == "report.md"][0]
+    _overlays(cfg, cube, ridges, geometry, deviations, results, folder)
+    if len(results) > 1:
+        try:
+            from .compare import compare_results
+        except ImportError:  # comparison module not installed yet
+            compare_results = None
+        if compare_results is not None:
+            run.comparison = compare_results(
+                [run.results[n] for n in names], folder / "comparison",
+                overwrite=True)
+    run.seconds = time.perf_counter() - t0
+    return run
+
+
+def _overlays(cfg, cube, ridges, geometry, deviations, results, folder):
+    """Channel gallery with the posterior-median model and deviation map."""
+    planet_fits = {k: v for k, v in results.items() if k != BASELINE}
+    model_dv = None
+    planet_xy = None
+    if planet_fits:
+        name, res = next(iter(planet_fits.items()))
+        model_dv, planet_xy = _median_model_on_sky(cfg, geometry, res)
+    try:
+        from .plots.gallery import channel_gallery, deviation_map
+    except ImportError:
+        return
+    import matplotlib
+    matplotlib.use("Agg", force=False)
+    fig = channel_gallery(cube, ridges, geometry, model_dv_los=model_dv)
+    _save(fig, folder / "gallery.png")
+    fig = deviation_map(deviations, planet_xy=planet_xy)
+    _save(fig, folder / "deviations.png")
+
+
+def _save(fig, path: Path):
+    import os
+    import tempfile
+
+    import matplotlib.pyplot as plt
+    fd, tmp = tempfile.mkstemp(dir=path.parent, suffix=".png")
+    os.close(fd)
+    try:
+        fig.savefig(tmp, dpi=110)
+        os.replace(tmp, path)
+    finally:
+        plt.close(fig)
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+
+
+def _median_model_on_sky(cfg, geometry, res):
+    """Line-of-sight wake velocity of the posterior-median planet on the sky.
+
+    Returns a callable ``f(x_arcsec, y_arcsec) -> km/s`` (front surface) and
+    the planet's sky position (arcsec).
+    """
+    from .geometry import disk_to_sky, projection_coefficients, sky_to_disk
+    from .geometry import surface_point
+    from .scenario import damping_of, wake_disk
+    from .wake.model import Planet, wake_perturbations
+
+    med = {n: float(np.median(res.samples[:, j]))
+           for j, n in enumerate(res.param_names)}
+    med.update({k: float(v) for k, v in (res.fixed or {}).items()})
+    planet = Planet(mass_mjup=med["mass"], r_au=med["radius"],
+                    phi_rad=math.radians(med["azimuth"]))
+    disk = wake_disk(cfg, aspect_ratio=med.get("aspect_ratio"),
+                     mstar_msun=geometry.mstar_msun)
+    damping = damping_of(res.damping, med.get("alpha", 0.0),
+                         med.get("efold", math.inf))
+
+    def dv_los(x, y):
+        x = np.asarray(x, dtype=float)
+        y = np.asarray(y, dtype=float)
+        r, phi, _ = sky_to_disk(geometry, x, y, "front")
+        out = np.zeros_like(r)
+        ok = np.isfinite(r) & (r > disk.r_in_au) & (r < disk.r_out_au)
+        if np.any(ok):
+            vr, vphi, _ = wake_perturbations(r[ok], phi[ok], planet, disk,
+                                             damping)
+            a_r, a_phi, _ = projection_coefficients(geometry, phi[ok])
+            out[ok] = a_r * vr + a_phi * vphi
+        return out
+
+    z = surface_point(geometry, planet.r_au, planet.phi_rad, "front")
+    px, py, _ = disk_to_sky(geometry, planet.r_au, planet.phi_rad, z)
+    return dv_los, (float(px), float(py))
+
+
+def regenerate_report(result_path, *, output=None, cube=None) -> list[Path]:
+    """Rebuild tables, figures and ``report.md`` from a result file alone.
+
+    Parameters
+    ----------
+    result_path : path-like
+        A result written by :func:`run_fit`.
+    output : path-like, optional
+        Folder for the products (default: ``<result folder>/<assumption>``).
+    cube : path-like, optional
+        The cube the result claims to come from: its SHA-256 must match the
+        recorded one, else :class:`~kinkfit.errors.ResultFileError`.
+
+    Returns
+    -------
+    list of Path
+    """
+    from .report import write_report
+    from .results import file_sha256, read_result
+
+    path = Path(result_path)
+    res = read_result(path)
+    if cube is not None:
+        cube = Path(cube)
+        if not cube.exists():
+            raise ResultFileError("cube not found", file=cube)
+        sha = file_sha256(cube)
+        if sha != res.cube_sha256:
+            raise ResultFileError(
+                f"{path.name} was made from a cube with SHA-256 "
+                f"{res.cube_sha256[:12]}..., not from this file "
+                f"({sha[:12]}...)", file=cube, key="cube_sha256")
+    baseline = None
+    base_path = path.parent / f"fit_{BASELINE}.h5"
+    if not res.is_baseline and base_path.exists():
+        try:
+            candidate = read_result(base_path)
+        except ResultFileError:
+            candidate = None
+        if candidate is not None and candidate.cube_sha256 == res.cube_sha256:
+            baseline = candidate
+    name = BASELINE if res.is_baseline else res.damping
+    folder = Path(output) if output is not None else path.parent / name
+    return write_report(res, folder, baseline=baseline, source=path.name)
