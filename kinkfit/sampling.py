@@ -8,9 +8,11 @@ an ``(m, ndim)`` batch), differential-evolution moves (``DEMove`` weight
 Checkpoint and resume
 ---------------------
 The checkpoint is an HDF5 file with one group (:data:`CHECKPOINT_GROUP`)
-written by emcee's backend after *every* step: chain, log-probability,
-acceptance counts and the legacy ``RandomState`` of the sampler (attrs
-``random_state_0..4``, saved with the step it follows).  kinkfit adds the
+in emcee's ``HDFBackend`` layout: chain, log-probability, acceptance counts
+and the legacy ``RandomState`` of the sampler (attrs ``random_state_0..4``,
+saved with the step it follows).  Steps are written in blocks
+(``checkpoint_every`` steps or ``checkpoint_seconds``, see
+:func:`run_sampler`), each block with the random state of its last step.  kinkfit adds the
 attrs ``kinkfit_param_names`` and ``kinkfit_seed``.  On resume a new sampler
 is built on the same backend, which restores the random state, and the run
 continues from the last stored step, so no step is lost or repeated and
@@ -286,7 +288,8 @@ class _Evaluator:
 
 def _tau(chain: np.ndarray) -> np.ndarray:
     import emcee
-    return emcee.autocorr.integrated_time(chain, tol=0)
+    with np.errstate(invalid="ignore", divide="ignore"):  # stuck walkers
+        return emcee.autocorr.integrated_time(chain, tol=0)
 
 
 def _burn_thin(tau, n_steps):
@@ -300,9 +303,114 @@ def _burn_thin(tau, n_steps):
     return burn, thin
 
 
-def _open_backend(path: Path, param_set, nwalkers, resume: bool):
-    """HDFBackend on ``path``; returns (backend, resumed_iteration)."""
+def _buffered_backend(path: Path, every: int, seconds: float):
+    """An ``emcee.backends.HDFBackend`` that writes steps in blocks.
+
+    emcee's backend opens the file several times per step (shape, blob and
+    iteration checks, then the write), about 10 ms per step on a loaded
+    machine (``bench/bench_likelihood.py``).  This subclass keeps complete
+    steps in memory and writes them, with the random state of the last one,
+    in one file opening every ``every`` steps or ``seconds`` seconds, before
+    any read, and when the run ends or fails.  A killed process loses at
+    most that block; the resumed run recomputes it identically.
+    """
     import emcee
+
+    class BufferedHDFBackend(emcee.backends.HDFBackend):
+        def __init__(self, filename, name):
+            super().__init__(filename, name=name)
+            self.every, self.seconds = max(1, int(every)), float(seconds)
+            self._rows = []
+            self._meta = None
+            self._t_flush = time.monotonic()
+
+        def _cached(self):
+            if self._meta is None:
+                with self.open() as f:
+                    g = f[self.name]
+                    self._meta = (int(g.attrs["nwalkers"]),
+                                  int(g.attrs["ndim"]),
+                                  bool(g.attrs["has_blobs"]))
+            return self._meta
+
+        def reset(self, nwalkers, ndim):
+            self._rows, self._meta = [], None
+            super().reset(nwalkers, ndim)
+
+        @property
+        def shape(self):
+            return self._cached()[:2]
+
+        def has_blobs(self):
+            return self._cached()[2]
+
+        @property
+        def iteration(self):
+            return super().iteration + len(self._rows)
+
+        @property
+        def accepted(self):
+            self.flush()
+            return super().accepted
+
+        @property
+        def random_state(self):
+            self.flush()
+            return super().random_state
+
+        def get_value(self, name, flat=False, thin=1, discard=0):
+            self.flush()
+            return super().get_value(name, flat=flat, thin=thin,
+                                     discard=discard)
+
+        def _check_blobs(self, blobs):
+            if blobs is not None:
+                super()._check_blobs(blobs)
+
+        def save_step(self, state, accepted):
+            if state.blobs is not None:  # not buffered: plain emcee path
+                self.flush()
+                super().save_step(state, accepted)
+                self._meta = None
+                return
+            nw, nd = self.shape
+            coords = np.array(state.coords, dtype=float)
+            if coords.shape != (nw, nd):
+                raise ValueError(f"state shape {coords.shape} differs from "
+                                 f"the backend's {(nw, nd)}")
+            self._rows.append((coords, np.array(state.log_prob, dtype=float),
+                               np.array(accepted, dtype=float),
+                               state.random_state))
+            if (len(self._rows) >= self.every
+                    or time.monotonic() - self._t_flush >= self.seconds):
+                self.flush()
+
+        def flush(self):
+            self._t_flush = time.monotonic()
+            if not self._rows:
+                return
+            rows, self._rows = self._rows, []
+            n = len(rows)
+            with self.open("a") as f:
+                g = f[self.name]
+                it = int(g.attrs["iteration"])
+                if g["chain"].shape[0] < it + n:
+                    g["chain"].resize(it + n, axis=0)
+                    g["log_prob"].resize(it + n, axis=0)
+                g["chain"][it:it + n] = np.stack([r[0] for r in rows])
+                g["log_prob"][it:it + n] = np.stack([r[1] for r in rows])
+                g["accepted"][:] = (g["accepted"][:]
+                                    + np.sum([r[2] for r in rows], axis=0))
+                for i, v in enumerate(rows[-1][3]):
+                    g.attrs[f"random_state_{i}"] = v
+                g.attrs["iteration"] = it + n
+
+    return BufferedHDFBackend(str(path), CHECKPOINT_GROUP)
+
+
+def _open_backend(path: Path, param_set, nwalkers, resume: bool,
+                  every: int = 1, seconds: float = 0.0):
+    """Checkpoint backend on ``path``; returns (backend, iteration, seed)."""
     import h5py
 
     ndim = param_set.ndim
@@ -330,16 +438,15 @@ def _open_backend(path: Path, param_set, nwalkers, resume: bool):
             raise ResultFileError(
                 f"checkpoint parameters {list(names)} differ from this "
                 f"run's {list(param_set.free)}", file=path, value=names)
-        backend = emcee.backends.HDFBackend(str(path), name=CHECKPOINT_GROUP)
+        backend = _buffered_backend(path, every, seconds)
         it = int(attrs.get("iteration", 0))
         if it > 0:
             return backend, it, attrs.get("kinkfit_seed")
     path.parent.mkdir(parents=True, exist_ok=True)
     if path.exists():
         path.unlink()
-    # uncompressed: emcee's per-step writes into gzip chunks made the file
-    # larger and the steps slower (bench/bench_likelihood.py)
-    backend = emcee.backends.HDFBackend(str(path), name=CHECKPOINT_GROUP)
+    # uncompressed: gzip chunks made the file larger and the steps slower
+    backend = _buffered_backend(path, every, seconds)
     backend.reset(nwalkers, ndim)
     return backend, 0, None
 
@@ -372,7 +479,8 @@ class _DeferredInterrupt:
 # ------------------------------------------------------------- runner ---
 def run_sampler(log_prob: Callable, param_set: ParameterSet, settings,
                 checkpoint_path, *, initial=None, rng_seed: int | None = None,
-                resume: bool = True, ball_scale: float = 1e-3
+                resume: bool = True, ball_scale: float = 1e-3,
+                checkpoint_every: int = 10, checkpoint_seconds: float = 30.0
                 ) -> SamplerOutcome:
     """Run (or resume) the ensemble sampler until converged or max_steps.
 
@@ -395,6 +503,13 @@ def run_sampler(log_prob: Callable, param_set: ParameterSet, settings,
     resume : bool
         Continue a matching checkpoint; ``False`` starts afresh (the old
         checkpoint is replaced).
+    ball_scale : float
+        Radius of the initial ball as a fraction of each prior's width.
+    checkpoint_every, checkpoint_seconds : int, float
+        Steps are written to the checkpoint in blocks of this many steps or
+        after this many seconds, whichever comes first (and at every
+        convergence check, at the end, on errors and on SIGINT).  A SIGKILL
+        loses at most one block, recomputed identically on resume.
 
     Returns
     -------
@@ -420,8 +535,9 @@ def run_sampler(log_prob: Callable, param_set: ParameterSet, settings,
                           f"twice the number of free parameters ({ndim})",
                           key="sampler.walkers", value=nwalkers)
     ce = int(settings.check_every)
-    backend, it0, stored_seed = _open_backend(path, param_set, nwalkers,
-                                              resume)
+    backend, it0, stored_seed = _open_backend(
+        path, param_set, nwalkers, resume, checkpoint_every,
+        checkpoint_seconds)
     if it0 == 0:
         import h5py
         with h5py.File(path, "a") as f:
@@ -530,6 +646,7 @@ def run_sampler(log_prob: Callable, param_set: ParameterSet, settings,
                         converged = True
                         break
     finally:
+        backend.flush()  # buffered complete steps, also after errors
         if pool is not None:
             pool.close()
             pool.join()

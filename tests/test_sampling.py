@@ -289,3 +289,19 @@ def test_sigint_is_deferred_to_a_complete_step(tmp_path):
     out = run_sampler(lik.log_prob, lik.param_set, _settings(), ck,
                       initial=_start(lik), rng_seed=9)
     np.testing.assert_array_equal(out.chain, ref.chain)
+
+
+def test_prior_start_and_walker_check(tmp_path):
+    from kinkfit.errors import ConfigError
+    lik = _lik()
+    out = run_sampler(lik.log_prob, lik.param_set, _settings(max_steps=20),
+                      tmp_path / "p.h5", rng_seed=1)
+    first = out.chain[0]
+    assert np.all(np.isfinite(lik.param_set.log_prior(first)))
+    # prior draws, not a ball: the spread covers a good part of the prior
+    j = lik.param_set.free.index("azimuth")
+    assert np.ptp(first[:, j]) > 90.0
+    assert out.timings["n_evaluations"] >= 12 * 21
+    with pytest.raises(ConfigError, match="walkers"):
+        run_sampler(lik.log_prob, lik.param_set, _settings(walkers=6),
+                    tmp_path / "q.h5")
