@@ -286,7 +286,7 @@ def test_convergence_in_steps_box_and_k_grid(coarse):
     # steps, moving the WKB start outwards, padding the FFT box (finer k
     # grid) and halving dy change the flux by < 1e-4 relative and the
     # fields at |x| >= 1 by < 1e-3 of their peak.
-    base = dict(COARSE, nx=41)
+    base = dict(softening_h=0.1, x_max_h=3.0, nx=31, y_max_h=24.0, ny=481)
     ref = L.solve_sheet(**base)
     variants = {
         "steps": dict(base, steps_per_wavelength=80.0),

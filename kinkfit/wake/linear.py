@@ -308,7 +308,7 @@ def _exp_convolutions(f, dx):
 
 
 def _k_zero_mode(x, eps):
-    """``k -> 0`` mode: ``sigma - sigma'' = Phi0''``, ``v = (sigma' + Phi0')/2``.
+    """``k -> 0`` mode: ``sigma - sigma'' = Phi0''``, ``v = (sigma'+Phi0')/2``.
 
     ``Phi0`` is the x-dependent part of ``Phi_k`` as ``k -> 0``
     (``2 ln sqrt(x^2 + eps^2)``); the solution decaying on both sides is the
@@ -318,7 +318,8 @@ def _k_zero_mode(x, eps):
     r2 = x * x + eps * eps
     phi0_p = 2.0 * x / r2
     # sigma'' - sigma = -Phi0''  ->  sigma = (1/2) int e^{-|x-x'|} Phi0'',
-    # by quadrature on an auxiliary grid: |x'| <= 200 h (e^-200 negligible), step <= eps/20
+    # by quadrature on an auxiliary grid: |x'| <= 200 h (e^-200 negligible),
+    # step <= eps/20
     dxf = min(1e-3, eps / 20.0)
     nf = 2 * int(math.ceil(200.0 / dxf)) + 1
     xf = np.linspace(-200.0, 200.0, nf)
