@@ -132,8 +132,8 @@ mass = {{ prior = "log-uniform", low = "0.1 jupiterMass", high = "10 jupiterMass
 radius = {{ prior = "uniform", low = "50 au", high = "200 au" }}
 [sampler]
 walkers = {walkers}
-max_steps = 120
-check_every = 50
+max_steps = 60
+check_every = 30
 """
 
 
@@ -290,7 +290,7 @@ def test_batch_on_cluster_failures_isolated_and_products(tmp_path, client):
     row = t[(t["disk"] == "disk-a") & (t["assumption"] == "none")][0]
     assert row["mass_p16"] < row["mass_median"] < row["mass_p84"]
     # stand-in truth 2 M_J (tests/standin.py TRUTH), recovered within
-    # a generous interval for 120 steps
+    # a generous interval for 60 steps started at the truth
     assert 0.5 < row["mass_median"] < 8.0
     assert np.isfinite(row["delta_bic"])
     base = t[(t["disk"] == "disk-a") & (t["assumption"] == "baseline")][0]
@@ -368,21 +368,35 @@ def test_interrupted_batch_resumes_without_rerunning(tmp_path, client):
     assert _calls(tmp_path / "out" / "one")[-1]["resume"] is False
 
 
-def test_own_local_cluster_and_cli(tmp_path, capsys):
+def test_own_local_cluster(tmp_path):
     """The default path: run_batch starts (and stops) its own LocalCluster."""
-    path = _survey(tmp_path, [{"name": "solo", "config": "disk.toml"},
-                              {"name": "broken", "config": "nocube.toml"}])
+    path = _survey(tmp_path, [{"name": "solo", "config": "disk.toml",
+                               "baseline": False}])
     run = run_batch(path, workers=1, fit_fn=standin_fit)
     assert run.summaries["solo"]["status"] == "done"
     assert run.summaries["solo"]["pid"] != os.getpid()
+    assert list(run.summaries["solo"]["fits"]) == ["none"]
+
+
+def test_cli_with_scheduler_address(tmp_path, client, capsys):
+    path = _survey(tmp_path, [{"name": "solo", "config": "disk.toml"},
+                              {"name": "broken", "config": "nocube.toml"}])
+    first = run_batch(path, client=client, fit_fn=standin_fit)
+    assert first.failed == ["broken"]
     from kinkfit.cli import main
-    # resume through the CLI (default fit function): the complete task is
-    # skipped, the failed one fails again -> exit status 1, one line each
-    rc = main(["batch", str(path), "--resume", "--workers", "1"])
+    # resume through the CLI (default fit function) on the running
+    # scheduler: the complete task is skipped, the failed one fails again
+    # -> exit status 1 and one error line naming it
+    rc = main(["batch", str(path), "--resume", "--scheduler",
+               client.scheduler.address])
     out, err = capsys.readouterr()
     assert "1 task(s) run, 1 already complete" in out
     assert rc == 1 and "task broken failed" in err
     assert len([x for x in err.splitlines() if "kinkfit: error" in x]) == 1
+    # without --resume the CLI refuses, one line, exit status 2
+    rc = main(["batch", str(path), "--scheduler", client.scheduler.address])
+    err = capsys.readouterr().err
+    assert rc == 2 and "--resume" in err and len(err.splitlines()) == 1
 
 
 # --------------------------------------------------------- products ---
