@@ -104,16 +104,25 @@ class _Interrupting:
         return self.lik.log_prob(theta)
 
 
-def test_interrupt_then_resume_equals_uninterrupted(tmp_path):
+@pytest.mark.parametrize("block", [1, 1000])
+def test_interrupt_then_resume_equals_uninterrupted(tmp_path, block):
+    # block=1000: nothing is written before the interrupt except by the
+    # flush on the way out, which must keep every complete step
     lik = _lik()
     ref = run_sampler(lik.log_prob, lik.param_set, _settings(),
                       tmp_path / "ref.h5", initial=_start(lik), rng_seed=9)
     ck = tmp_path / "ck.h5"
     with pytest.raises(KeyboardInterrupt):
-        run_sampler(_Interrupting(lik, 101), lik.param_set, _settings(), ck,
-                    initial=_start(lik), rng_seed=9)
+        run_sampler(_Interrupting(lik, 101), lik.param_set,
+                    _settings(check_every=1000), ck, initial=_start(lik),
+                    rng_seed=9, checkpoint_every=block,
+                    checkpoint_seconds=1e9)
     chain, _, it = read_checkpoint(ck)
     assert 0 < it < 90 and chain.shape[0] == it   # checkpoint readable
+    # 2 (DEMove) or 4 (DESnookerMove) log_prob calls per step (emcee's
+    # red-blue splits; 2 calls before the first step): ~40 complete steps
+    # precede call 101, and all of them are kept
+    assert it >= 35
     out = run_sampler(lik.log_prob, lik.param_set, _settings(), ck,
                       initial=_start(lik), rng_seed=9)
     assert out.resumed_from == it
