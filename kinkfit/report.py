@@ -242,10 +242,13 @@ def _convergence_text(result) -> str:
         f"- Converged: **{'yes' if result.converged else 'NO'}** "
         f"(criterion: steps > {mult:g} τ_max and τ changed by less than "
         f"{100 * tol:g}% between checks).",
-        f"- {result.n_steps} steps × {nw} walkers; integrated "
-        f"autocorrelation time τ = "
-        + ", ".join(f"{n}: {t:.1f}" for n, t in zip(result.param_names, tau))
-        + f" steps; N/τ_max = {result.n_steps / tau_max:.1f}.",
+        (f"- {result.n_steps} steps × {nw} walkers; integrated "
+         f"autocorrelation time τ = "
+         + ", ".join(f"{n}: {t:.1f}" for n, t in zip(result.param_names, tau))
+         + f" steps; N/τ_max = {result.n_steps / tau_max:.1f}.")
+        if np.isfinite(tau_max) else
+        (f"- {result.n_steps} steps × {nw} walkers; the autocorrelation time "
+         f"could not be estimated (chain too short)."),
         f"- Acceptance fraction: mean {acc.mean():.3f} "
         f"(range {acc.min():.3f}–{acc.max():.3f}).",
         f"- Burn-in {result.burn} steps, thinning {result.thin}: "

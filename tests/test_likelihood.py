@@ -2,6 +2,7 @@
 
 import numpy as np
 import pytest
+from hypothesis import given, settings, strategies as st
 from scipy import stats
 
 from kinkfit.errors import KinkfitError, PhysicsRangeError
@@ -203,3 +204,22 @@ def test_predict_offset_sign_convention(rng):
                          model, ps)
     off = lik.predict_offset(ps.pack(TRUTH))
     assert off.shape == (1, 1) and np.isclose(off[0, 0], -0.15)
+
+
+@settings(max_examples=60, deadline=None)
+@given(u=st.lists(st.floats(0.0, 1.0), min_size=4, max_size=4),
+       scale=st.sampled_from([1e-6, 1.0, 1e6]),
+       kind=st.sampled_from(["gaussian", "student-t"]))
+def test_never_nan_property(u, scale, kind):
+    # any point of the prior box (edges included) with tiny or huge data
+    # offsets gives a finite log-probability, never NaN
+    rng = np.random.default_rng(0)
+    d = standin_data(rng, npts=40)
+    d["offset_arcsec"] = d["offset_arcsec"] * scale
+    ps = standin_params()
+    lo = np.array([ps.prior(n).support[0] for n in ps.free])
+    hi = np.array([ps.prior(n).support[1] for n in ps.free])
+    theta = (lo + np.array(u) * (hi - lo))[None]
+    lik = KinkLikelihood(model=standin_model, param_set=ps, kind=kind, **d)
+    lp = lik.log_prob(theta)
+    assert np.isfinite(lp[0])

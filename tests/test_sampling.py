@@ -314,3 +314,11 @@ def test_prior_start_and_walker_check(tmp_path):
     with pytest.raises(ConfigError, match="walkers"):
         run_sampler(lik.log_prob, lik.param_set, _settings(walkers=6),
                     tmp_path / "q.h5")
+
+
+def test_find_start_without_finite_point_raises():
+    from kinkfit.errors import KinkfitError
+    ps = standin_params()
+    with pytest.raises(KinkfitError, match="finite"):
+        find_start(lambda t: np.full(len(t), -np.inf), ps,
+                   np.random.default_rng(0), n_tries=20)
