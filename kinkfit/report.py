@@ -307,7 +307,7 @@ def write_report(result, folder, *, baseline=None, truths=None,
     ----------
     result : FitResult
     folder : path-like
-        Output folder (created).
+        Output folder (created; files of the same names are replaced).
     baseline : FitResult, optional
         Planet-free baseline fitted to the same traced points; adds the
         comparison (see :func:`baseline_comparison`).
