@@ -148,8 +148,8 @@ def test_scattered_times_blend_between_grid_times():
     # is the linear blend of the two bracketing times (definition)
     chi0 = gauss_deriv(ETA)
     tg = np.array([0.0, 0.5, 1.0, 2.0, 4.0])
-    eta_p = np.array([-1.0, 0.3, 2.0, 0.0, 1.5])
-    t_p = np.array([0.5, 1.0, 3.0, 4.0, 0.75])
+    eta_p = np.array([-1.0, 0.3, 2.0, 0.0, 1.5, 0.2])
+    t_p = np.array([0.5, 1.0, 3.0, 4.0, 0.75, 6.0])   # 6 distinct > 5 grid times
     got = burgers_at_times(ETA, chi0, t_p, eta_p, tg)[0]
     h = burgers_history(ETA, chi0, tg, eta_p)[0]
     assert got[0] == pytest.approx(h[1, 0])
@@ -157,6 +157,12 @@ def test_scattered_times_blend_between_grid_times():
     assert got[2] == pytest.approx(0.5 * (h[3, 2] + h[4, 2]))
     assert got[3] == pytest.approx(h[4, 3])
     assert got[4] == pytest.approx(0.5 * (h[1, 4] + h[2, 4]))
+    assert got[5] == pytest.approx(h[4, 5])           # beyond the grid: nearest end
+    # few distinct times: exact evaluation at each point's own time
+    t_q = np.array([3.0, 3.0, 0.75])
+    got = burgers_at_times(ETA, chi0, t_q, eta_p[:3], tg)[0]
+    exact = [burgers_solution(ETA, chi0, t, e)[0] for t, e in zip(t_q, eta_p[:3])]
+    assert np.allclose(got, exact)
 
 
 def test_zero_time_returns_initial_profile():

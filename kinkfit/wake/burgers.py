@@ -227,7 +227,9 @@ def burgers_at_times(eta0, chi0, t_points, eta_points, t_grid, passive=()):
 
     Each point is evaluated exactly in ``eta`` at the two bracketing times of
     ``t_grid`` and blended linearly in ``t``; points outside the grid use the
-    nearest end.  Cost: one hull per grid time.
+    nearest end.  Cost: one hull per grid time.  If the points have no more
+    distinct times than the grid has, they are evaluated exactly at their own
+    times instead (no blending).
 
     Parameters
     ----------
@@ -254,6 +256,14 @@ def burgers_at_times(eta0, chi0, t_points, eta_points, t_grid, passive=()):
     nf = 1 + len(passive)
     out = np.zeros((nf, tp.size))
     if tp.size == 0:
+        return out.reshape((nf,) + shape)
+    uniq, inv = np.unique(tp, return_inverse=True)
+    if uniq.size <= tg.size:
+        # few distinct times (e.g. points on a few circles): evaluate exactly
+        for i, t in enumerate(uniq):
+            sel = inv == i
+            pos, vals, _ = burgers_nodes(eta0, chi0, max(t, 0.0), passive, _u0=u0)
+            out[:, sel] = _interp_nodes(pos, vals, ep[sel])
         return out.reshape((nf,) + shape)
     tc = np.clip(tp, tg[0], tg[-1])
     idx = np.clip(np.searchsorted(tg, tc, side="right") - 1, 0, tg.size - 2) \

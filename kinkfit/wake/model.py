@@ -47,12 +47,21 @@ from .nonlinear import (MatchProfile, amplitude_factor, chi_from_sigma, cross_co
 
 __all__ = ["WakeDisk", "Planet", "Damping", "WakeSkeleton", "thermal_mass_msun",
            "mass_ratio", "wake_skeleton", "wake_perturbations",
-           "wake_angular_momentum_flux", "DEFAULT_MATCH_H"]
+           "wake_angular_momentum_flux", "DEFAULT_MATCH_H", "default_match_h"]
 
 log = logging.getLogger(__name__)
 
-#: default matching distance |r - r_p| / h_p between the sheet and Burgers
-DEFAULT_MATCH_H = 4.0
+#: default matching distance |r - r_p| / h_p between the sheet and Burgers.
+#: The far-field N-wave strength converges only once the linear profile has
+#: reached its asymptotic shape (|X| >~ 7 h_p; docs/physics/nonlinear.md §6).
+DEFAULT_MATCH_H = 7.0
+#: the local sheet is used at most this far from the planet, in r_p
+MAX_MATCH_RP = 0.35
+
+
+def default_match_h(aspect_p: float) -> float:
+    """Default matching distance (h_p): ``min(7, 0.35 / aspect_p)``."""
+    return min(DEFAULT_MATCH_H, MAX_MATCH_RP / aspect_p)
 _N_ARM = 3000       # points of the 1-D tables per arm
 _N_TIME = 400       # Burgers grid times per arm
 
@@ -240,7 +249,7 @@ def _scaled_profile(prof, a, p, q, gamma):
 
 
 def wake_skeleton(disk: WakeDisk, damping: Damping = Damping(), *, x_lo: float, x_hi: float,
-                  x_match_h: float = DEFAULT_MATCH_H, sheet=None) -> WakeSkeleton:
+                  x_match_h: float | None = None, sheet=None) -> WakeSkeleton:
     """Build the mass-independent tables for ``x = r/r_p`` in ``[x_lo, x_hi]``.
 
     Parameters
@@ -249,8 +258,9 @@ def wake_skeleton(disk: WakeDisk, damping: Damping = Damping(), *, x_lo: float, 
     damping : Damping
     x_lo, x_hi : float
         Radial range (``r/r_p``) the tables must cover.
-    x_match_h : float
-        Matching distance (h_p), inside the sheet window.
+    x_match_h : float, optional
+        Matching distance (h_p), inside the sheet window; default
+        :func:`default_match_h`.
     sheet : SheetSolution, optional
         Linear solution; default ``kinkfit.wake.linear.get_sheet_solution()``.
 
@@ -262,7 +272,7 @@ def wake_skeleton(disk: WakeDisk, damping: Damping = Damping(), *, x_lo: float, 
         from .linear import get_sheet_solution
         sheet = get_sheet_solution()
     a, p, q, gam = disk.aspect_p, disk.p, disk.q, disk.gamma
-    xm = float(x_match_h)
+    xm = float(default_match_h(disk.aspect_p) if x_match_h is None else x_match_h)
     dx_sheet = sheet.x_h[1] - sheet.x_h[0]
     if not (0.5 <= xm <= sheet.x_h[-1] - dx_sheet):
         raise PhysicsRangeError(
@@ -337,7 +347,7 @@ def _default_skeleton(disk, damping, x_lo, x_hi, x_match_h):
 # evaluation
 # --------------------------------------------------------------------------
 
-def _interior(sk: WakeSkeleton, amp: float, clock: str, x_h, y_h):
+def _interior(sk: WakeSkeleton, amp: float, clock: str, x_h, s_h):
     """Sheet fields (per unit c_p) at interior points, steepened for the planet clock.
 
     The density is steepened by Burgers column by column; the velocities are
@@ -365,7 +375,8 @@ def _interior(sk: WakeSkeleton, amp: float, clock: str, x_h, y_h):
         v = v + sk.sheet_wkb_phi[:, None] * change
         sig = new
     from scipy.interpolate import RegularGridInterpolator
-    pts = np.column_stack([x_h, y_h - _y_ref(x_h)])
+    # the sheet's crest parabola is laid onto the R02 locus (global curvature)
+    pts = np.column_stack([x_h, s_h])
     res = []
     for f in (sig * d, u * d, v * d):
         itp = RegularGridInterpolator((sk.sheet_x_h, sk.sheet_s_h), f, bounds_error=False,
@@ -403,7 +414,7 @@ def _exterior(arm: _Arm, sk: WakeSkeleton, amp: float, clock: str, x, phi, phi_p
 
 
 def wake_perturbations(r_au, phi_rad, planet: Planet, disk: WakeDisk,
-                       damping: Damping = Damping(), *, x_match_h: float = DEFAULT_MATCH_H,
+                       damping: Damping = Damping(), *, x_match_h: float | None = None,
                        clock: str = "planet", sheet=None):
     """Velocity and surface-density perturbations of the planet's wake.
 
@@ -416,8 +427,9 @@ def wake_perturbations(r_au, phi_rad, planet: Planet, disk: WakeDisk,
     disk : WakeDisk
     damping : Damping
         Damping assumption (default none).
-    x_match_h : float
-        Matching distance between the linear sheet and Burgers, h_p.
+    x_match_h : float, optional
+        Matching distance between the linear sheet and Burgers, h_p; default
+        ``min(7, 0.35 r_p / h_p)`` (:func:`default_match_h`).
     clock : {"planet", "matching"}
         Origin of the nonlinear clock (see module docstring).
     sheet : SheetSolution, optional
@@ -463,7 +475,8 @@ def wake_perturbations(r_au, phi_rad, planet: Planet, disk: WakeDisk,
     x_lo = disk.r_in_au / rp
     x_hi = disk.r_out_au / rp
     if sheet is None:
-        sk = _default_skeleton(disk, damping, x_lo, x_hi, float(x_match_h))
+        xm = default_match_h(a) if x_match_h is None else float(x_match_h)
+        sk = _default_skeleton(disk, damping, x_lo, x_hi, xm)
     else:
         sk = wake_skeleton(disk, damping, x_lo=x_lo, x_hi=x_hi, x_match_h=x_match_h,
                            sheet=sheet)
@@ -472,8 +485,9 @@ def wake_perturbations(r_au, phi_rad, planet: Planet, disk: WakeDisk,
     x_h = (x - 1.0) / a
     near = inside & (np.abs(x_h) <= sk.x_match_h)
     if np.any(near):
-        y_h = wrap_angle(phi[near] - planet.phi_rad) / a
-        s_, u_, v_ = _interior(sk, amp, clock, x_h[near], y_h)
+        # s = y - y_crest, with the crest on the R02 locus phi_w(r)
+        s_h = wrap_angle(phi[near] - wake_azimuth(x[near], a, disk.q, planet.phi_rad)) / a
+        s_, u_, v_ = _interior(sk, amp, clock, x_h[near], s_h)
         dsg[near], dvr[near], dvp[near] = s_, u_ * c_p, v_ * c_p
     for arm, sel in ((sk.outer, inside & (x_h > sk.x_match_h)),
                      (sk.inner, inside & (x_h < -sk.x_match_h))):

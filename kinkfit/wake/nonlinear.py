@@ -192,7 +192,8 @@ class MatchProfile:
     x_match : float
         ``r/r_p`` of the matching radius.
     eta : ndarray, shape (n,)
-        Cross-wake coordinate (increasing), h_p; origin on the R02 crest
+        Cross-wake coordinate (increasing), h_p; origin on the sheet's crest
+        parabola ``y = -(3/4) X|X|``, which the model lays onto the R02 crest
         ``phi_w(x_match)``.
     chi : ndarray, shape (n,)
         ``chi`` for ``Mp = M_th`` (multiply by ``Mp/M_th``).
@@ -248,7 +249,9 @@ def matching_profile(sheet, x_match_h, aspect_p, p, q, gamma, *, taper_h=4.0):
     if not x > 0:
         raise PhysicsRangeError(f"matching distance {xm} h_p reaches r <= 0 for "
                                 f"aspect_p={aspect_p}", key="x_match_h", value=xm)
-    y_w = (wake_azimuth(x, aspect_p, q) / aspect_p)
+    # origin on the local crest parabola y = -(3/4) X|X| of the sheet; the model
+    # lays this origin onto the R02 crest phi_w(r) (global curvature)
+    y_w = -0.75 * xm * abs(xm)
     eta = np.sign(xm) * (y - y_w)
     w = _taper(y, taper_h)
     order = np.argsort(eta)
