@@ -445,7 +445,9 @@ def estimate_smearing_bias(cube, ridges, fit_or_geom, settings, *,
     A noise-free cube of the background disk (``fit_or_geom``) is made on
     the data's pixel grid, channels and beams (:func:`model_cube`, emission
     from :func:`estimate_emission` unless given) and traced at exactly the
-    data's cuts, with the same filter widths and windows.  The model's
+    data's cuts, with the same filter widths and windows, taking the local
+    maximum nearest to the data's peak (so a point that locked onto a
+    blended neighbour gets the bias of that blend).  The model's
     offsets from its own iso-velocity curves would be zero without beam
     smearing; they are the bias.  Points whose model cut fails get the
     inverse-distance mean of the three nearest measured points of the same
@@ -484,7 +486,8 @@ def estimate_smearing_bias(cube, ridges, fit_or_geom, settings, *,
                 channel=ridges.channel, surface=ridges.surface,
                 dir_x=ridges.dir_x, dir_y=ridges.dir_y,
                 template_arcsec=ridges.template_arcsec,
-                half_window_arcsec=ridges.half_window_arcsec)
+                half_window_arcsec=ridges.half_window_arcsec,
+                peak_x_arcsec=ridges.x_arcsec, peak_y_arcsec=ridges.y_arcsec)
     # noise-free: no SNR or precision cut
     quiet = replace(settings, min_snr=0.0) if hasattr(settings, "__dataclass_fields__") \
         else settings

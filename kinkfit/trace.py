@@ -62,7 +62,8 @@ _SURFACE_NAMES = {v: k for k, v in SURFACE_CODES.items()}
 _FIELDS = ("x_arcsec", "y_arcsec", "channel", "velocity_kms", "sigma_arcsec",
            "surface", "snr", "amplitude", "width_arcsec", "dir_x", "dir_y",
            "beam_fwhm_arcsec", "beam_sigma_cut_arcsec", "template_arcsec",
-           "half_window_arcsec", "cut_x_arcsec", "cut_y_arcsec")
+           "half_window_arcsec", "cut_x_arcsec", "cut_y_arcsec",
+           "grad_cut_kms_per_arcsec")
 
 
 def _ro(a, dtype=float):
@@ -104,6 +105,8 @@ class Ridges:
         Width of the matched filter and half length of the cut used, arcsec.
     cut_x_arcsec, cut_y_arcsec : ndarray
         Centre of the cut (on the tracing model's iso-velocity curve).
+    grad_cut_kms_per_arcsec : ndarray
+        ``|grad V|`` of the tracing model at the cut centre, km/s/arcsec.
     meta : dict
         Settings used and the rejection counts (``'rejected'``).
     """
@@ -125,6 +128,7 @@ class Ridges:
     half_window_arcsec: np.ndarray
     cut_x_arcsec: np.ndarray
     cut_y_arcsec: np.ndarray
+    grad_cut_kms_per_arcsec: np.ndarray
     meta: dict = field(default_factory=dict, compare=False)
 
     def __post_init__(self):
@@ -264,7 +268,7 @@ def position_sigma(noise, amplitude, width, template, beam_sigma):
 
 
 def peak_along_cuts(image, grid, cx, cy, ux, uy, half_window, beam_sigma,
-                    nsamp):
+                    nsamp, hint=None):
     """Locate the emission peak along straight cuts through one channel map.
 
     Parameters
@@ -283,6 +287,9 @@ def peak_along_cuts(image, grid, cx, cy, ux, uy, half_window, beam_sigma,
         Beam sigma along each cut (template width), arcsec.
     nsamp : int
         Odd number of samples per cut.
+    hint : ndarray, shape (n,), optional
+        Take the interior local maximum nearest to this position along the
+        cut (arcsec) instead of the highest one.
 
     Returns
     -------
@@ -318,7 +325,11 @@ def peak_along_cuts(image, grid, cx, cy, ux, uy, half_window, beam_sigma,
     locmax = np.zeros_like(inner)
     locmax[:, 1:-1] = (sm[:, 1:-1] >= sm[:, :-2]) & (sm[:, 1:-1] >= sm[:, 2:])
     smi = np.where(inner & locmax, sm, -np.inf)
-    j = np.argmax(smi, axis=1)
+    if hint is None:
+        j = np.argmax(smi, axis=1)
+    else:
+        dist = np.abs(s - np.asarray(hint, float)[:, None])
+        j = np.argmin(np.where(np.isfinite(smi), dist, np.inf), axis=1)
     j = np.clip(j, 1, nsamp - 2)
     r = np.arange(n)
     ym, y0_, yp = sm[r, j - 1], sm[r, j], sm[r, j + 1]
@@ -428,7 +439,8 @@ def _window_limits(v_own, v_other, v, grid, cx, cy, ux, uy, half, fwhm,
 
 def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
                  max_window_beams: float = 4.0, min_window_beams: float = 0.75,
-                 clearance_beams: float = 0.5, max_sigma_beams: float = 0.25,
+                 clearance_beams: float = 0.5, max_sigma_beams: float = 0.15,
+                 max_width_ratio: float | None = 2.0,
                  channels=None,
                  cuts=None) -> Ridges:
     """Trace the emission ridges of every channel along the model's gradient.
@@ -462,13 +474,19 @@ def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
         Points whose 1-sigma position error exceeds this (beam FWHM) are
         dropped: broad, faint ridges carry little weight in any fit
         (weight ~ sigma^-2) and their errors are the least Gaussian.
+    max_width_ratio : float or None
+        Points whose ridge is wider than this times the width expected from
+        the beam and the cube's median line width (``w_exp^2 = s_b^2 +
+        sigma_v^2 / g^2``) are dropped as blended (reason ``'blended'``);
+        None keeps them.
     channels : sequence of int, optional
         Channels to trace (default all).
     cuts : dict, optional
         Trace at given cuts instead of sampling the iso-velocity curves:
         arrays ``x_arcsec, y_arcsec`` (cut centres), ``channel, surface,
         dir_x, dir_y, template_arcsec, half_window_arcsec`` (one pass with
-        this filter and window)
+        this filter and window) and optionally ``peak_x_arcsec,
+        peak_y_arcsec`` (take the local maximum nearest to it)
         (used for the beam-smearing bias, see
         :func:`kinkfit.deviations.estimate_smearing_bias`).  The overlap
         rejections are skipped; the returned Ridges keep the input order and
@@ -558,6 +576,10 @@ def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
                 gxi, gyi = _interp([gx, gy], r0, c0)
                 gg = np.hypot(gxi, gyi)
                 fixed_t = np.asarray(cuts["template_arcsec"], float)[idx_in]
+                hint = None
+                if "peak_x_arcsec" in cuts:
+                    hint = ((np.asarray(cuts["peak_x_arcsec"], float)[idx_in] - cx) * ux
+                            + (np.asarray(cuts["peak_y_arcsec"], float)[idx_in] - cy) * uy)
                 fixed_h = np.asarray(cuts["half_window_arcsec"], float)[idx_in]
             sb = _beam_sigma_along(bmaj, bmin, bpa, ux, uy)
             with np.errstate(divide="ignore", invalid="ignore"):
@@ -591,7 +613,7 @@ def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
                 step_max = np.minimum(0.5 * tmpl, 0.5 * pix)
                 nsamp = int(2 * math.ceil(np.max(half / step_max)) + 1)
                 res = peak_along_cuts(img, grid, cx, cy, ux, uy, half, tmpl,
-                                      nsamp)
+                                      nsamp, hint=hint if npass == 3 else None)
                 with np.errstate(divide="ignore", invalid="ignore"):
                     wt2 = -res["peak"] / res["curv"]
                     w2 = np.clip(wt2 - tmpl ** 2, sb ** 2, (2.0 * half) ** 2)
@@ -649,7 +671,7 @@ def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
                 beam_fwhm_arcsec=np.full(sp.size, fwhm),
                 beam_sigma_cut_arcsec=sb[good], template_arcsec=tmpl[good],
                 half_window_arcsec=half[good], cut_x_arcsec=cx[good],
-                cut_y_arcsec=cy[good]))
+                cut_y_arcsec=cy[good], grad_cut_kms_per_arcsec=gg[good]))
             if idx_in is not None:
                 kept_index.append(idx_in[good])
     meta = {"surfaces": list(surfaces), "min_snr": min_snr,
@@ -666,6 +688,18 @@ def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
             meta["index"] = np.zeros(0, dtype=int)
         return out
     out = Ridges.concatenate(parts, meta=meta)
+    if cuts is None and max_width_ratio is not None and len(out) >= 10:
+        # blended ridges: much wider than a ridge of the cube's typical
+        # line width, w_exp^2 = s_b^2 + sigma_v^2 / g^2 with
+        # sigma_v^2 = median((w^2 - s_b^2) g^2) over all points
+        sb2 = out.beam_sigma_cut_arcsec ** 2
+        g2 = out.grad_cut_kms_per_arcsec ** 2
+        sv2 = float(np.median((out.width_arcsec ** 2 - sb2) * g2))
+        w_exp = np.sqrt(sb2 + max(sv2, 0.0) / g2)
+        wide = out.width_arcsec > max_width_ratio * w_exp
+        rejected["blended"] = int(np.sum(wide))
+        meta["line_sigma_eff_kms"] = math.sqrt(max(sv2, 0.0))
+        out = out.select(~wide)
     if cuts is not None:
         idx = np.concatenate(kept_index)
         order = np.argsort(idx, kind="stable")
@@ -693,11 +727,12 @@ def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
     2. trace the ridges with the ``[disk]`` start geometry and, when
        ``disk.fit_background``, alternate tracing and a robust background
        fit until the geometry settles (:func:`kinkfit.diskfit.trace_and_fit`);
-    3. when ``trace.debias``, estimate the beam-smearing bias of every point
-       from a noise-free model of the fitted disk
-       (:func:`kinkfit.deviations.estimate_smearing_bias`), refit the
-       background with the bias removed, and re-estimate the bias at the
-       refitted geometry;
+       when ``trace.debias`` every round's fit removes the beam-smearing
+       bias of the points, estimated from a noise-free model of the current
+       geometry (:func:`kinkfit.deviations.estimate_smearing_bias`; the
+       emission profile is estimated once, in the first round) -- without
+       it the blended front/back ridges pull the fitted layer height down;
+    3. re-estimate the bias of the final points at the final geometry;
     4. measure the deviations against the fitted disk with the bias removed
        (:func:`kinkfit.deviations.measure_deviations`).
 
@@ -721,7 +756,7 @@ def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
     """
     from .cube import read_cube
     from .deviations import estimate_smearing_bias, measure_deviations
-    from .diskfit import fit_background as _fit, trace_and_fit
+    from .diskfit import trace_and_fit
     if cube is None:
         centre = None
         if cfg.data.centre_ra_deg is not None and cfg.data.centre_dec_deg is not None:
@@ -731,8 +766,17 @@ def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
     geom0 = cfg.geometry()
     settings = cfg.trace
     do_fit = cfg.disk.fit_background if fit_background is None else fit_background
+    state = {"emission": None, "bias": None}
+
+    def bias_of(ridges, geom):
+        b = estimate_smearing_bias(cube, ridges, geom, settings,
+                                   emission=state["emission"])
+        state["emission"], state["bias"] = b.emission, b
+        return b.offset_arcsec
+
     if do_fit:
-        ridges, fit = trace_and_fit(cube, geom0, settings, rounds=rounds)
+        ridges, fit = trace_and_fit(cube, geom0, settings, rounds=rounds,
+                                    bias=bias_of if settings.debias else None)
         geom = fit.geometry
     else:
         ridges = trace_ridges(cube, geom0, settings)
@@ -744,14 +788,9 @@ def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
                            value=settings.min_snr)
     bias = None
     if settings.debias:
-        bias = estimate_smearing_bias(cube, ridges, geom, settings)
-        if fit is not None:
-            fit = dataclasses.replace(
-                _fit(ridges, geom, fit.names, bias=bias.offset_arcsec),
-                rounds=fit.rounds)
-            geom = fit.geometry
-            bias = estimate_smearing_bias(cube, ridges, geom, settings,
-                                          emission=bias.emission)
+        # bias of the final ridges at the final geometry
+        bias = estimate_smearing_bias(cube, ridges, geom, settings,
+                                      emission=state["emission"])
     dev = measure_deviations(ridges, fit if fit is not None else geom, bias=bias)
     dev.meta["geometry"] = _geom_dict(geom)
     dev.meta["cube_sha256"] = cube.provenance.get("sha256", "")
