@@ -312,3 +312,29 @@ def test_bad_parameters_raise():
     # messages are one line and name the value
     with pytest.raises(PhysicsRangeError, match="0.6"):
         WakeDisk(mstar_msun=1.0, aspect_p=0.6)
+
+
+def test_plot_wake_maps_returns_labelled_figure():
+    # plot contract (DEVELOPERS.md/common brief): returns a Figure, axes in au,
+    # colour bars in km/s, locus overlaid; symmetric diverging scales
+    from matplotlib.figure import Figure
+    from kinkfit.plots.wake import plot_wake_maps, wake_locus_xy
+    fig = plot_wake_maps(planet(0.1), DISK, Damping("efold", efold_rp=1.0), npix=41,
+                         extent_au=150.0)
+    assert isinstance(fig, Figure)
+    images = [ax for ax in fig.axes if ax.get_images()]
+    assert len(images) == 3
+    assert all(ax.get_xlabel() == "X [au]" for ax in images)
+    cbar_labels = [ax.get_ylabel() for ax in fig.axes if not ax.get_images()]
+    assert sum("km/s" in lab for lab in cbar_labels) == 2
+    for ax in images:
+        lo, hi = ax.get_images()[0].get_clim()
+        assert lo == pytest.approx(-hi) and hi > 0
+        assert len(ax.get_lines()) >= 3           # two locus arms + planet marker
+    # the drawn locus is the R02 curve: radius and azimuth of its points
+    (xi, yi), (xo, yo) = wake_locus_xy(planet(0.1), DISK)
+    r = np.hypot(xo, yo)
+    phi = wake_azimuth(r / RP, A_P, DISK.q, 0.4)
+    assert np.allclose(np.arctan2(yo, xo), np.angle(np.exp(1j * phi)), atol=1e-9)
+    with pytest.raises(PhysicsRangeError):
+        plot_wake_maps(planet(0.1), DISK, extent_au=-1.0)
