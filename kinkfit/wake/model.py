@@ -61,7 +61,7 @@ MAX_MATCH_RP = 0.35
 
 def default_match_h(aspect_p: float) -> float:
     """Default matching distance (h_p): ``min(7, 0.35 / aspect_p)``."""
-    return min(DEFAULT_MATCH_H, MAX_MATCH_RP / aspect_p)
+    return min(DEFAULT_MATCH_H, round(MAX_MATCH_RP / aspect_p, 9))
 _N_ARM = 3000       # points of the 1-D tables per arm
 _N_TIME = 400       # Burgers grid times per arm
 
