@@ -16,7 +16,7 @@ from kinkfit.wake import linear
 from kinkfit.wake.damping import (DAMPING_LAWS, Damping, DampingContext,
                                   damping_factor, register_damping)
 from kinkfit.wake.locus import wake_arc_length_rp, wake_azimuth
-from kinkfit.wake.model import (Planet, WakeDisk, mass_ratio,
+from kinkfit.wake.model import (Planet, WakeDisk, default_match_h, mass_ratio,
                                 wake_angular_momentum_flux, wake_perturbations,
                                 wake_skeleton)
 from kinkfit.wake.nonlinear import (amplitude_factor, cross_coordinate,
@@ -150,14 +150,16 @@ def test_model_peak_follows_locus():
 
 def test_join_is_continuous():
     # linear inside / Burgers outside the matching distance join continuously
-    # (planet clock, moderately nonlinear A = 0.1; both arms)
-    for s in (1, -1):
-        x0 = 1 + s * 4.0 * A_P
-        _, ur0, up0, sg0 = cut(x0 - s * 1e-4 * A_P, 0.1)
-        _, ur1, up1, sg1 = cut(x0 + s * 1e-4 * A_P, 0.1)
-        # L1 norm: a shock may sit one interior grid cell (0.1 h_p) apart
-        for a, b in ((sg0, sg1), (ur0, ur1), (up0, up1)):
-            assert np.sum(np.abs(a - b)) < 0.03 * np.sum(np.abs(a))
+    # (planet clock, moderately nonlinear A = 0.1; both arms; default and 4 h_p)
+    for xm in (None, 4.0):
+        xj = default_match_h(A_P) if xm is None else xm
+        for s in (1, -1):
+            x0 = 1 + s * xj * A_P
+            _, ur0, up0, sg0 = cut(x0 - s * 1e-4 * A_P, 0.1, x_match_h=xm)
+            _, ur1, up1, sg1 = cut(x0 + s * 1e-4 * A_P, 0.1, x_match_h=xm)
+            # L1 norm: a shock may sit one interior grid cell (0.1 h_p) apart
+            for a, b in ((sg0, sg1), (ur0, ur1), (up0, up1)):
+                assert np.sum(np.abs(a - b)) < 0.03 * np.sum(np.abs(a))
 
 
 def test_angular_momentum_flux_continuous_constant_then_decaying(sheet):
@@ -167,16 +169,20 @@ def test_angular_momentum_flux_continuous_constant_then_decaying(sheet):
     p = planet(A)
     xm = 4.0
     X = np.array([xm - 0.02, xm + 0.02, 5.0, 6.0, 12.0, 16.0, 20.0, 40.0])
-    f = wake_angular_momentum_flux(1 + A_P * X, p, DISK)
+    f = wake_angular_momentum_flux(1 + A_P * X, p, DISK, x_match_h=xm)
     assert f[1] == pytest.approx(f[0], rel=0.05)
     assert f[0] == pytest.approx(linear.angular_momentum_flux(sheet, xm), rel=0.05)
     assert f[2] == pytest.approx(f[1], rel=0.05) and f[3] == pytest.approx(f[1], rel=0.05)
     assert f[6] < 0.85 * f[1] and f[4] > f[5] > f[6] > f[7]
     assert f[7] < 0.6 * f[1]
     # inner arm too
-    fi = wake_angular_momentum_flux(1 - A_P * X[:4], p, DISK)
+    fi = wake_angular_momentum_flux(1 - A_P * X[:4], p, DISK, x_match_h=xm)
     assert fi[1] == pytest.approx(fi[0], rel=0.05)
     assert fi[3] == pytest.approx(fi[1], rel=0.05)
+    # default match (7 h_p): continuous there too
+    xd = default_match_h(A_P)
+    fd = wake_angular_momentum_flux(1 + A_P * np.array([xd - 0.02, xd + 0.02]), p, DISK)
+    assert fd[1] == pytest.approx(fd[0], rel=0.05)
 
 
 def test_insensitive_to_matching_distance(sheet):

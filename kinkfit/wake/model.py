@@ -4,11 +4,15 @@
 and azimuthal velocity perturbations (km/s) and ``dSigma/Sigma`` of the wake:
 
 * within ``|r - r_p| <= x_match_h h_p`` of the planet: the GR01 linear sheet
-  (``kinkfit.wake.linear``), in the planet's frame (``x = (r - r_p)/h_p``,
-  ``y = r_p wrap(phi - phi_p)/h_p``), scaled by ``Mp/M_th``;
+  (``kinkfit.wake.linear``) in the planet's frame (``X = (r - r_p)/h_p``),
+  scaled by ``Mp/M_th``, taken to the global wave by per-column amplitude
+  factors (R02 amplitude law over GR01's local one) and with its crest
+  parabola laid onto the R02 locus;
 * beyond it: the matching-distance profile evolved by inviscid Burgers in the
   coordinates of :mod:`kinkfit.wake.nonlinear` along the R02 locus, damped by
-  the chosen :class:`~kinkfit.wake.damping.Damping`.
+  the chosen :class:`~kinkfit.wake.damping.Damping`; velocities from the WKB
+  relation ``u = c delta n`` plus the sheet's non-wave residual at the
+  matching distance, tapered to zero by ``2 x_match_h``.
 
 Nonlinear clock.  By default (``clock="planet"``) ``t`` counts from the planet
 (GR01): the linear profile at the matching distance stands for the wave's
@@ -16,8 +20,9 @@ shape at launch, and it is evolved for the time ``t(r)`` accumulated since the
 planet.  To keep the field continuous the sheet inside the matching distance
 receives the same treatment, column by column (each sheet column at ``X`` is
 steepened for ``t(X) ∝ |X|^(5/2)``, which vanishes at the planet).  Then
-shock distances follow GR01's ``Mp^(-2/5)`` law and the result does not
-depend on the matching distance.  ``clock="matching"`` starts the clock at
+shock distances follow GR01's ``Mp^(-2/5)`` law and do not depend on the
+matching distance; the far-field N-wave strength still does at the 10-20 %
+level (docs/physics/nonlinear.md §5).  ``clock="matching"`` starts the clock at
 the matching distance instead (plain linear sheet inside; shocks further out
 and a flatter mass scaling).
 
@@ -273,6 +278,9 @@ def wake_skeleton(disk: WakeDisk, damping: Damping = Damping(), *, x_lo: float, 
         sheet = get_sheet_solution()
     a, p, q, gam = disk.aspect_p, disk.p, disk.q, disk.gamma
     xm = float(default_match_h(disk.aspect_p) if x_match_h is None else x_match_h)
+    if xm < 2.0:
+        log.warning("matching distance %.2f h_p is inside the wave-forming region of the "
+                    "linear sheet (h/r = %.3g): the nonlinear far field is unreliable", xm, a)
     dx_sheet = sheet.x_h[1] - sheet.x_h[0]
     if not (0.5 <= xm <= sheet.x_h[-1] - dx_sheet):
         raise PhysicsRangeError(
