@@ -438,3 +438,87 @@ def test_survey_table_from_summaries_units_and_figure():
     # the one mass bar spans [p16, p84]
     seg = ax.collections[0].get_segments()[0]
     assert seg[0][0] == pytest.approx(1.5) and seg[1][0] == pytest.approx(2.6)
+
+
+# ------------------------------------------- end to end, real pipeline ---
+_E2E_CONFIG = """
+title = "Veyra (fictional batch test disk)"
+[data]
+cube = "veyra.fits"
+distance = "135 pc"
+[disk]
+stellar_mass = "1.0 solMass"
+inclination = "38 deg"
+position_angle = "112 deg"
+systemic_velocity = "5.6 km/s"
+inner_radius = "15 au"
+outer_radius = "280 au"
+surface_aspect = 0.2
+surface_flaring = 1.2
+[wake]
+aspect_ratio = 0.1
+damping = ["none"]
+baseline = true
+[planet]
+mass = { prior = "log-uniform", low = "0.2 jupiterMass", high = "5 jupiterMass" }
+radius = "110 au"
+azimuth = "40 deg"
+[sampler]
+walkers = 10
+max_steps = 10
+check_every = 10
+seed = 11
+[output]
+folder = "out"
+[synth]
+seed = 2026
+npix = 48
+pixel_size = "0.1 arcsec"
+nchan = 36
+channel_width = "0.15 km/s"
+beam_major = "0.12 arcsec"
+beam_minor = "0.10 arcsec"
+peak_snr = 50.0
+brightness_radius = "220 au"
+temperature = "60 K"
+turbulence = "0.08 km/s"
+planet = true
+[synth.truth]
+mass = "1.5 jupiterMass"
+radius = "110 au"
+azimuth = "40 deg"
+damping = "viscous"
+alpha = 0.003
+"""
+
+
+@pytest.mark.slow
+def test_end_to_end_real_pipeline(tmp_path, client):
+    """Real run_fit (trace, fit, baseline, reports) on a tiny synthetic cube
+    made by the tool itself; ~1 min on 2 loaded cores."""
+    pytest.importorskip("kinkfit.pipeline")
+    from kinkfit.config import load_config
+    from kinkfit.scenario import synth_from_config
+    cfg_path = tmp_path / "veyra.toml"
+    cfg_path.write_text(_E2E_CONFIG)
+    synth_from_config(load_config(cfg_path), overwrite=True)
+    (tmp_path / "nocube.toml").write_text(
+        _E2E_CONFIG.replace('cube = "veyra.fits"', 'cube = "absent.fits"'))
+    man = tmp_path / "survey.toml"
+    man.write_text('[survey]\nfolder = "out"\n'
+                   '[[fit]]\nname = "veyra"\nconfig = "veyra.toml"\n'
+                   '[[fit]]\nname = "absent"\nconfig = "nocube.toml"\n')
+    run = run_batch(man, client=client)
+    s = run.summaries
+    assert s["veyra"]["status"] == "done", s["veyra"]["error"]
+    assert set(s["veyra"]["fits"]) == {"none", "baseline"}
+    assert s["absent"]["status"] == "failed"
+    assert "absent.fits" in s["absent"]["error"]
+    t = survey_table(s)
+    row = t[(t["disk"] == "veyra") & (t["assumption"] == "none")][0]
+    assert t["mass_median"].unit == "jupiterMass"
+    # inside the prior (0.2-5 M_J); 10 steps do not converge
+    assert 0.2 <= row["mass_p16"] <= row["mass_median"] <= row["mass_p84"] <= 5
+    assert np.isfinite(row["delta_bic"])
+    again = run_batch(man, client=client, resume=True)
+    assert again.skipped == ["veyra"] and again.ran == ["absent"]
