@@ -262,6 +262,10 @@ def parse_manifest(text: str, path: str | Path | None = None) -> BatchManifest:
                                   file)
         out = base / _check_value("str", spec["folder"], f"{where}.folder",
                                   file) if "folder" in spec else folder / name
+        if out.resolve() in {e.folder.resolve() for e in entries}:
+            raise ConfigError(f"{where}: output folder {out} is already used "
+                              f"by another entry", file=file,
+                              key=f"{where}.folder", value=str(out))
         entries.append(BatchEntry(name=name, config=cfg, folder=out,
                                   overrides=ov))
     title = survey.get("name", "")
@@ -378,7 +382,8 @@ def _fit_summaries(results: dict, converged: dict) -> dict:
 
 
 def run_task(entry: BatchEntry, *, resume: bool = True,
-             fit_fn: Callable | None = None) -> dict:
+             fit_fn: Callable | None = None, run_tag: str | None = None
+             ) -> dict:
     """Run one survey entry; the function each Dask task executes.
 
     Parameters
@@ -387,6 +392,11 @@ def run_task(entry: BatchEntry, *, resume: bool = True,
     resume : bool
         Passed to the fit function (continue from checkpoints); ``False``
         also passes ``force=True`` (replace earlier results).
+    run_tag : str, optional
+        Identifier of the batch submission.  With ``resume=False`` the task
+        leaves a marker ``.batch-<run_tag>`` in its folder when it starts;
+        if Dask re-executes the task (worker lost or retired, retry), the
+        marker is found and the fit resumes instead of starting over again.
     fit_fn : callable, optional
         ``fit_fn(cfg, *, force, resume, workers, progress)`` returning an
         object with ``output_folder``, ``results`` (assumption -> HDF5
@@ -418,6 +428,14 @@ def run_task(entry: BatchEntry, *, resume: bool = True,
         cfg = apply_overrides(load_config(entry.config), entry.overrides,
                               entry.folder)
         Path(entry.folder).mkdir(parents=True, exist_ok=True)
+        if not resume and run_tag:
+            marker = Path(entry.folder) / f".batch-{run_tag}"
+            if marker.exists():
+                log.info("task %s re-executed: resuming its checkpoints",
+                         entry.name)
+                resume = True
+            else:
+                marker.write_text(_now() + "\n", encoding="utf-8")
         run = fit_fn(cfg, force=not resume, resume=resume, workers=1,
                      progress=False)
         out["fits"] = _fit_summaries(dict(run.results), dict(run.converged))
@@ -647,7 +665,7 @@ def _run_tasks(client, todo, tasks, state, state_path, *, resume, fit_fn):
         tasks[e.name]["submitted_utc"] = _now()
     _write_json_atomic(state_path, state)
     futures = client.map(run_task, todo, key=keys, pure=False, retries=1,
-                         resume=resume, fit_fn=fit_fn)
+                         resume=resume, fit_fn=fit_fn, run_tag=tag)
     try:
         for fut in as_completed(futures):
             entry = by_key[fut.key]

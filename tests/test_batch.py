@@ -200,6 +200,8 @@ def test_manifest_unknown_keys_are_named(text, key):
      "fit[0].walkers"),
     ('[[fit]]\nname = "a"\nconfig = "c.toml"\nbaseline = 1\n',
      "fit[0].baseline"),
+    ('[[fit]]\nname = "a"\nconfig = "c.toml"\nfolder = "x"\n[[fit]]\n'
+     'name = "b"\nconfig = "c.toml"\nfolder = "x"\n', "fit[1].folder"),
 ])
 def test_manifest_bad_values(text, key):
     with pytest.raises(ConfigError) as err:
@@ -244,6 +246,21 @@ def test_run_task_applies_overrides_and_one_process(tmp_path):
     mass = s["fits"]["none"]["params"]["mass"]
     assert mass["unit"] == "jupiterMass"
     assert mass["p16"] < mass["median"] < mass["p84"]
+
+
+def test_restarted_task_reexecuted_by_dask_resumes(tmp_path):
+    # a restart (resume=False) task that Dask runs a second time (worker
+    # lost / retired) must continue, not start over again
+    path = _survey(tmp_path, [{"name": "a", "config": "disk.toml",
+                               "baseline": False}])
+    entry = load_manifest(path).entries[0]
+    first = run_task(entry, resume=False, run_tag="t1", fit_fn=standin_fit)
+    again = run_task(entry, resume=False, run_tag="t1", fit_fn=standin_fit)
+    fresh = run_task(entry, resume=False, run_tag="t2", fit_fn=standin_fit)
+    assert first["status"] == again["status"] == fresh["status"] == "done"
+    calls = _calls(entry.folder)
+    assert [c["resume"] for c in calls] == [False, True, False]
+    assert calls[1]["reused"] == ["none"] and calls[2]["written"] == ["none"]
 
 
 def test_run_task_user_errors_become_one_line(tmp_path):
