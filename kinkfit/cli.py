@@ -133,6 +133,33 @@ def _cmd_report(args) -> int:
     return 0
 
 
+def _cmd_wake(args) -> int:
+    import math
+
+    from .config import SynthTruth, load_config
+    from .plots.wake import plot_wake_maps
+    from .scenario import damping_of, wake_disk
+    from .wake.model import Planet
+    cfg = load_config(args.config)
+    truth = cfg.synth.truth if cfg.synth is not None else None
+    if truth is None:
+        truth = SynthTruth(1.0, 100.0, 0.0, cfg.wake.damping[0], 1e-3, math.inf)
+    mass = truth.mass_mjup if args.mass is None else args.mass
+    radius = truth.radius_au if args.radius is None else args.radius
+    azimuth = truth.azimuth_deg if args.azimuth is None else args.azimuth
+    kind = truth.damping if args.damping is None else args.damping
+    planet = Planet(mass_mjup=mass, r_au=radius, phi_rad=math.radians(azimuth))
+    fig = plot_wake_maps(planet, wake_disk(cfg),
+                         damping_of(kind, truth.alpha if args.alpha is None
+                                    else args.alpha,
+                                    truth.efold if args.efold is None
+                                    else args.efold))
+    out = args.output or f"wake_{cfg.path.stem if cfg.path else 'config'}.png"
+    fig.savefig(out, dpi=110)
+    print(f"wrote {out}")
+    return 0
+
+
 def _cmd_not_ready(args) -> int:
     raise KinkfitError(f"command '{args.command}' is not available in this "
                        f"version of kinkfit")
@@ -218,6 +245,23 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--cube", default=None,
                    help="FITS cube to check against the recorded checksum")
     p.set_defaults(handler=_cmd_report)
+
+    p = sub.add_parser("wake", parents=[common],
+                       help="draw the planet's wake (dv_r, dv_phi, dSigma/Sigma "
+                            "maps and locus) for a config")
+    p.add_argument("config", help="TOML config (planet from [synth.truth] "
+                                  "unless given below)")
+    p.add_argument("-o", "--output", default=None, help="PNG path")
+    p.add_argument("--mass", type=float, default=None, help="planet mass, Mjup")
+    p.add_argument("--radius", type=float, default=None, help="orbital radius, au")
+    p.add_argument("--azimuth", type=float, default=None,
+                   help="azimuth from the red-shifted major axis, deg")
+    p.add_argument("--damping", choices=("none", "viscous", "efold"),
+                   default=None, help="damping assumption")
+    p.add_argument("--alpha", type=float, default=None, help="viscous alpha")
+    p.add_argument("--efold", type=float, default=None,
+                   help="e-folding length / r_p")
+    p.set_defaults(handler=_cmd_wake)
 
     p = sub.add_parser("montage", parents=[common],
                        help="draw a cube's channel maps as one PNG")
