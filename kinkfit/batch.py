@@ -544,6 +544,9 @@ def _open_client(scheduler, workers):
                            "'kinkfit[cluster]')")
     if scheduler:
         try:
+            if Path(scheduler).is_file():   # a scheduler file (JSON)
+                return Client(scheduler_file=str(scheduler),
+                              timeout="30s"), None
             return Client(scheduler, timeout="30s"), None
         except (OSError, TimeoutError, ValueError) as exc:
             raise KinkfitError(f"--scheduler {scheduler}: cannot connect "
@@ -568,8 +571,10 @@ def run_batch(manifest, *, scheduler: str | None = None,
     ----------
     manifest : path-like or BatchManifest
     scheduler : str, optional
-        Address of a running Dask scheduler (``tcp://host:8786``); default:
-        a ``LocalCluster`` of ``workers`` processes, one thread each.
+        Address of a running Dask scheduler (``tcp://host:8786``) or path
+        of its scheduler file (``dask scheduler --scheduler-file``);
+        default: a ``LocalCluster`` of ``workers`` processes, one thread
+        each.
     workers : int, optional
         Local worker processes (default 1; ignored with ``scheduler``).
     resume : bool

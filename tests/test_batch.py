@@ -410,6 +410,13 @@ def test_cli_with_scheduler_address(tmp_path, client, capsys):
     assert "1 task(s) run, 1 already complete" in out
     assert rc == 1 and "task broken failed" in err
     assert len([x for x in err.splitlines() if "kinkfit: error" in x]) == 1
+    # the same through a scheduler file (JSON with the address, the format
+    # `dask scheduler --scheduler-file` writes)
+    sched = tmp_path / "scheduler.json"
+    sched.write_text(json.dumps({"address": client.scheduler.address}))
+    rc = main(["batch", str(path), "--resume", "--scheduler", str(sched)])
+    out, err = capsys.readouterr()
+    assert rc == 1 and "1 task(s) run, 1 already complete" in out
     # without --resume the CLI refuses, one line, exit status 2
     rc = main(["batch", str(path), "--scheduler", client.scheduler.address])
     err = capsys.readouterr().err
