@@ -235,11 +235,17 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
     cube_sha = cube.provenance.get("sha256") or file_sha256(cfg.data.cube)
     truths = truths_from_header(cube)
 
-    ridges, fit, deviations = run_trace(cfg, cube=cube)
-    geometry = fit.geometry if fit is not None else cfg.geometry()
     trace_file = folder / "trace.h5"
-    write_trace_file(trace_file, ridges, fit, deviations, cfg=cfg,
-                     overwrite=True)
+    traced = None if force else _reuse_trace(trace_file, cfg, cube_sha)
+    if traced is None:
+        ridges, fit, deviations = run_trace(cfg, cube=cube)
+        write_trace_file(trace_file, ridges, fit, deviations, cfg=cfg,
+                         overwrite=True)
+    else:
+        ridges, fit, deviations = traced
+        log.info("%s: traced data of this config and cube reused",
+                 trace_file.name)
+    geometry = fit.geometry if fit is not None else cfg.geometry()
 
     run = FitRun(output_folder=folder, trace_file=trace_file)
     names = list(cfg.wake.damping) + ([BASELINE] if cfg.wake.baseline else [])
@@ -273,6 +279,33 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
                 overwrite=True)
     run.seconds = time.perf_counter() - t0
     return run
+
+
+def _reuse_trace(path: Path, cfg: KinkfitConfig, cube_sha: str):
+    """Traced data from an earlier run of the same config and cube, or None."""
+    from types import SimpleNamespace
+
+    import h5py
+
+    from .trace import read_trace_file
+    if not path.exists():
+        return None
+    try:
+        with h5py.File(path, "r") as f:
+            same = (f.attrs.get("config_text") == cfg.text
+                    and f.attrs.get("cube_sha256") == cube_sha)
+        if not same:
+            return None
+        ridges, bg, dev = read_trace_file(path)
+    except (OSError, KeyError, ResultFileError) as exc:
+        log.warning("%s unreadable (%s); tracing again", path.name, exc)
+        return None
+    fit = None
+    if bg is not None:
+        fit = SimpleNamespace(geometry=bg["geometry"], names=bg["names"],
+                              values=np.asarray(bg["values"], float),
+                              errors=np.asarray(bg["errors"], float))
+    return ridges, fit, dev
 
 
 def _overlays(cfg, cube, ridges, geometry, deviations, results, folder):
