@@ -531,8 +531,17 @@ class BatchRun:
 
     @property
     def failed(self) -> list:
+        """Tasks that did not finish (failed, interrupted, pending)."""
         return [n for n, s in self.summaries.items()
                 if s.get("status") != "done"]
+
+    @property
+    def not_converged(self) -> list:
+        """``"<task>/<assumption>"`` of finished fits that did not converge."""
+        return [f"{n}/{a}" for n, s in self.summaries.items()
+                if s.get("status") == "done"
+                for a, f in (s.get("fits") or {}).items()
+                if not f.get("converged")]
 
 
 def _open_client(scheduler, workers):

@@ -92,6 +92,13 @@ def crashing_fit(cfg, **kw):
     raise RuntimeError("simulated crash")
 
 
+def sleepy_fit(cfg, **kw):
+    """standin_fit, 3 s late for the entry whose folder is named 'slow'."""
+    if Path(cfg.output.folder).name == "slow":
+        time.sleep(3.0)
+    return standin_fit(cfg, **kw)
+
+
 def _calls(folder):
     p = Path(folder) / "calls.jsonl"
     if not p.exists():
@@ -383,6 +390,39 @@ def test_interrupted_batch_resumes_without_rerunning(tmp_path, client):
     fourth = run_batch(path, client=client, fit_fn=standin_fit, restart=True)
     assert sorted(fourth.ran) == ["broken", "one", "two"]
     assert _calls(tmp_path / "out" / "one")[-1]["resume"] is False
+
+
+def test_client_interrupt_keeps_state_then_resumes(tmp_path, client,
+                                                  monkeypatch):
+    """Ctrl-C in the client after the first task finished: the state file
+    says which task is done and which was interrupted; --resume reruns only
+    the latter."""
+    import dask.distributed as dd
+    real = dd.as_completed
+
+    def interrupted_after_first(futures):
+        for i, fut in enumerate(real(futures)):
+            yield fut
+            raise KeyboardInterrupt
+
+    path = _survey(tmp_path, [{"name": "quick", "config": "disk.toml"},
+                              {"name": "slow", "config": "disk.toml"}])
+    monkeypatch.setattr(dd, "as_completed", interrupted_after_first)
+    with pytest.raises(KeyboardInterrupt):
+        run_batch(path, client=client, fit_fn=sleepy_fit)
+    monkeypatch.setattr(dd, "as_completed", real)
+    state = read_state(tmp_path / "out" / STATE_NAME)
+    assert state["tasks"]["quick"]["status"] == "done"
+    assert state["tasks"]["slow"]["status"] == "interrupted"
+    # a cancelled task that already runs on a worker is not killed by Dask;
+    # wait for it so that the resumed run does not overlap it
+    deadline = time.monotonic() + 60
+    while not _calls(tmp_path / "out" / "slow") and time.monotonic() < deadline:
+        time.sleep(0.2)
+    again = run_batch(path, client=client, fit_fn=sleepy_fit, resume=True)
+    assert again.skipped == ["quick"] and again.ran == ["slow"]
+    assert again.summaries["slow"]["status"] == "done"
+    assert len(_calls(tmp_path / "out" / "quick")) == 1
 
 
 def test_own_local_cluster(tmp_path):
