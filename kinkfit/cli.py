@@ -61,7 +61,11 @@ def _cmd_batch(args) -> int:
         s = run.summaries[name]
         print(f"kinkfit: error: task {name} {s.get('status', 'failed')}: "
               f"{s.get('error') or 'no result'}", file=sys.stderr)
-    return 1 if run.failed else 0
+    if run.not_converged:
+        print(f"kinkfit: warning: not converged: "
+              f"{', '.join(run.not_converged)} (see their reports)",
+              file=sys.stderr)
+    return 1 if (run.failed or run.not_converged) else 0
 
 
 def _cmd_trace(args) -> int:
