@@ -117,7 +117,7 @@ def _cmd_fit(args) -> int:
                   progress=False if args.no_progress else None)
     for name, path in run.results.items():
         state = "converged" if run.converged[name] else "NOT converged"
-        print(f"{name:>10}: {path}  ({state})")
+        print(f"{name:>10}: {path}  ({state}; {run.status[name]})")
         print(f"{'':>10}  report: {run.reports[name]}")
     if run.comparison is not None:
         print(f"comparison: {run.comparison}")
@@ -161,6 +161,21 @@ def _cmd_wake(args) -> int:
     out = args.output or f"wake_{cfg.path.stem if cfg.path else 'config'}.png"
     fig.savefig(out, dpi=110)
     print(f"wrote {out}")
+    return 0
+
+
+def _cmd_compare(args) -> int:
+    from pathlib import Path
+    from .compare import compare_results
+    folder = (Path(args.output) if args.output
+              else Path(args.results[0]).parent / "comparison")
+    path = compare_results(args.results, folder, reference=args.reference,
+                           overwrite=args.force,
+                           allow_mismatch=args.allow_mismatch)
+    print(f"wrote {path}")
+    for name in sorted(p.name for p in folder.glob("comparison*")
+                       if p.name != path.name):
+        print(f"wrote {folder / name}")
     return 0
 
 
@@ -291,6 +306,24 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--restart", action="store_true",
                    help="start over: rerun every task, replace results")
     p.set_defaults(handler=_cmd_batch)
+
+    p = sub.add_parser("compare", parents=[common],
+                       help="compare fits of the same traced data (damping "
+                            "assumptions, planet-free baseline): PSIS-LOO, "
+                            "shifts, overlaid corner plot")
+    p.add_argument("results", nargs="+", metavar="RESULT",
+                   help="result HDF5 files written by 'kinkfit fit'")
+    p.add_argument("-o", "--output", default=None, metavar="FOLDER",
+                   help="output folder (default: comparison/ next to the "
+                        "first result)")
+    p.add_argument("--reference", default=None, metavar="NAME",
+                   help="assumption the shifts are measured from (default: "
+                        "the first planet fit)")
+    p.add_argument("--allow-mismatch", action="store_true",
+                   help="compare even if cubes, traced data or priors differ")
+    p.add_argument("--force", action="store_true",
+                   help="replace an existing comparison")
+    p.set_defaults(handler=_cmd_compare)
 
     return parser
 

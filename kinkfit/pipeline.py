@@ -58,6 +58,8 @@ class FitRun:
         Wall time of this call.
     reports : dict of str -> Path
         Assumption -> ``report.md``.
+    status : dict of str -> str
+        Assumption -> what happened (new fit, resumed, kept).
     trace_file : Path
     """
 
@@ -68,6 +70,7 @@ class FitRun:
     reports: dict = field(default_factory=dict)
     trace_file: Path | None = None
     comparison: Path | None = None
+    status: dict = field(default_factory=dict)
 
 
 def truths_from_header(cube) -> dict:
@@ -137,7 +140,9 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
 
     Returns
     -------
-    (Path, FitResult)
+    (Path, FitResult, str)
+        The result file, the result, and what happened: ``"new fit"``,
+        ``"resumed from checkpoint at step N"`` or ``"finished result kept"``.
     """
     from dataclasses import replace
 
@@ -152,7 +157,7 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
     if path.exists() and not overwrite:
         res = _matches(path, cfg, cube_sha, name)
         log.info("%s: finished result found, kept", path.name)
-        return path, res
+        return path, res, "finished result kept"
 
     with_planet = name != BASELINE
     damping = name if with_planet else cfg.wake.damping[0]
@@ -176,7 +181,12 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
     t0 = time.perf_counter()
     rng = np.random.default_rng(settings.seed)
     start = None
-    if not (resume and checkpoint.exists() and not force):
+    status = "new fit"
+    if resume and checkpoint.exists() and not force:
+        from .sampling import read_checkpoint
+        done = read_checkpoint(checkpoint)[2]  # ResultFileError if corrupt
+        status = f"resumed from checkpoint at step {done}"
+    else:
         start = find_start(like.log_prob, pset, rng)
     outcome = run_sampler(like.log_prob, pset, settings, checkpoint,
                           initial=start, rng_seed=settings.seed,
@@ -195,7 +205,7 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
     write_result(path, result, overwrite=True)
     log.info("%s: %d steps in %.1f s, converged=%s", path.name,
              outcome.n_steps, time.perf_counter() - t0, outcome.converged)
-    return path, result
+    return path, result, status
 
 
 def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
@@ -251,13 +261,14 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
     names = list(cfg.wake.damping) + ([BASELINE] if cfg.wake.baseline else [])
     results = {}
     for name in names:
-        path, res = fit_assumption(
+        path, res, status = fit_assumption(
             cfg, deviations, geometry, name, folder=folder,
             cube_path=str(cfg.data.cube), cube_sha=cube_sha, background=fit,
             truths=truths, force=force, resume=resume, workers=workers,
             progress=progress)
         run.results[name] = path
         run.converged[name] = bool(res.converged)
+        run.status[name] = status
         results[name] = res
     baseline = results.get(BASELINE)
     for name, res in results.items():
