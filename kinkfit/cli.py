@@ -179,6 +179,44 @@ def _cmd_compare(args) -> int:
     return 0
 
 
+def _cmd_forecast(args) -> int:
+    from pathlib import Path
+    from .config import load_config
+    from .forecast import (DEFAULT_MASSES_MJUP, DEFAULT_OFFSETS_KMS,
+                           forecast_from_config, save_forecast_products)
+    cfg = load_config(args.config)
+    res = forecast_from_config(
+        cfg, masses_mjup=args.masses or DEFAULT_MASSES_MJUP,
+        offsets_kms=args.offsets or DEFAULT_OFFSETS_KMS,
+        beams_arcsec=args.beams, channel_widths_kms=args.channel_widths,
+        threshold=args.threshold)
+    folder = Path(args.output) if args.output else cfg.output.folder / "forecast"
+    best = res.min_mass_any()
+    for i, fw in enumerate(res.beam_fwhm_arcsec):
+        for j, cw in enumerate(res.channel_widths_kms):
+            print(f"beam {fw:.3g}\" channel {cw:.3g} km/s: minimum mass "
+                  f"{best[i, j]:.3g} Mjup (kink > {res.threshold:g} x position "
+                  f"error; conditional on the wake model)")
+    for path in save_forecast_products(res, folder):
+        print(f"wrote {path}")
+    return 0
+
+
+def _cmd_calibrate(args) -> int:
+    from .calibrate import run_calibration
+    from .config import load_config
+    cfg = load_config(args.config)
+    run = run_calibration(cfg, injections=args.injections,
+                          seed=cfg.sampler.seed if args.seed is None else args.seed,
+                          damping=args.damping, workers=args.workers,
+                          resume=args.resume, folder=args.output)
+    print(f"{len(run.ran)} injection(s) run, {len(run.skipped)} already "
+          f"complete, {len(run.failed)} failed; state in {run.state_path}")
+    for path in run.products:
+        print(f"wrote {path}")
+    return 1 if run.failed else 0
+
+
 def _cmd_not_ready(args) -> int:
     raise KinkfitError(f"command '{args.command}' is not available in this "
                        f"version of kinkfit")
@@ -324,6 +362,48 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true",
                    help="replace an existing comparison")
     p.set_defaults(handler=_cmd_compare)
+
+    p = sub.add_parser("forecast", parents=[common],
+                       help="kink amplitude vs planet mass and the minimum "
+                            "detectable mass for the [synth] observing setup")
+    p.add_argument("config", help="TOML config (needs [synth] and [synth.truth] "
+                                  "for the planet position)")
+    p.add_argument("--masses", type=float, nargs="+", default=None,
+                   metavar="MJUP", help="planet masses, Jupiter masses")
+    p.add_argument("--offsets", type=float, nargs="+", default=None,
+                   metavar="KMS", help="channel velocity minus the planet's "
+                                       "line-of-sight velocity, km/s")
+    p.add_argument("--beams", type=float, nargs="+", default=None,
+                   metavar="ARCSEC", help="circular beam FWHMs, arcsec "
+                                          "(default: the config's beam)")
+    p.add_argument("--channel-widths", type=float, nargs="+", default=None,
+                   metavar="KMS", help="channel widths, km/s (default: the "
+                                       "config's)")
+    p.add_argument("--threshold", type=float, default=3.0,
+                   help="detection multiple of a ridge point's position "
+                        "error (default 3)")
+    p.add_argument("-o", "--output", default=None, metavar="FOLDER",
+                   help="output folder (default: <output.folder>/forecast)")
+    p.set_defaults(handler=_cmd_forecast)
+
+    p = sub.add_parser("calibrate", parents=[common],
+                       help="injection-recovery campaign: coverage, rank "
+                            "histograms and bias of the posteriors")
+    p.add_argument("config", help="TOML config (needs [synth])")
+    p.add_argument("--injections", type=int, default=100,
+                   help="planets drawn from the prior (default 100)")
+    p.add_argument("--workers", type=int, default=1,
+                   help="parallel injection processes (default 1)")
+    p.add_argument("--resume", action="store_true",
+                   help="continue a campaign: skip finished injections")
+    p.add_argument("--seed", type=int, default=None,
+                   help="campaign seed (default: sampler.seed)")
+    p.add_argument("--damping", default=None,
+                   help="assumption injected and fitted (default: the first "
+                        "of wake.damping)")
+    p.add_argument("-o", "--output", default=None, metavar="FOLDER",
+                   help="campaign folder (default: <output.folder>/calibration)")
+    p.set_defaults(handler=_cmd_calibrate)
 
     return parser
 

@@ -85,7 +85,7 @@ __all__ = ["SkyField", "ForecastResult", "sky_field", "los_perturbation",
            "kink_amplitude", "planet_los_velocity", "minimum_mass",
            "run_forecast", "forecast_from_config", "amplitude_table",
            "minimum_mass_table", "write_forecast_tables",
-           "traced_kinks", "DEFAULT_OFFSETS_KMS", "DEFAULT_MASSES_MJUP"]
+           "traced_kinks", "save_forecast_products", "DEFAULT_OFFSETS_KMS", "DEFAULT_MASSES_MJUP"]
 
 log = logging.getLogger(__name__)
 
@@ -807,3 +807,25 @@ def traced_kinks(geom, setup, emission, perturbation, *, min_snr: float = 3.0,
             ys[k] = r0.y_arcsec[a][m][j]
     return {"velocity_kms": vel, "amplitude_arcsec": amp, "x_arcsec": xs,
             "y_arcsec": ys, "displacement": disp, "channel": chan}
+
+
+def save_forecast_products(res: ForecastResult, folder) -> list:
+    """Tables (:func:`write_forecast_tables`) and figures of a forecast.
+
+    Figures: ``forecast_amplitude.png`` (arcsec), ``forecast_amplitude_beams.png``
+    (beam FWHM), ``forecast_min_mass.png``.
+
+    Returns
+    -------
+    list of pathlib.Path
+    """
+    from pathlib import Path
+    from .plots.forecast import amplitude_figure, minimum_mass_figure
+    folder = Path(folder)
+    out = write_forecast_tables(res, folder)
+    for name, fig in (("forecast_amplitude.png", amplitude_figure(res)),
+                      ("forecast_amplitude_beams.png", amplitude_figure(res, in_beams=True)),
+                      ("forecast_min_mass.png", minimum_mass_figure(res))):
+        fig.savefig(folder / name, dpi=110)
+        out.append(folder / name)
+    return out
