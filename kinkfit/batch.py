@@ -89,7 +89,8 @@ from .errors import ConfigError, InputFileError, KinkfitError, ResultFileError
 __all__ = [
     "BatchEntry", "BatchManifest", "BatchRun", "load_manifest",
     "parse_manifest", "run_task", "run_batch", "read_state",
-    "survey_table", "write_survey_tables", "survey_mass_figure",
+    "survey_table", "survey_markdown", "write_survey_tables",
+    "survey_mass_figure", "apply_overrides",
     "STATE_NAME", "SURVEY_PARAMETERS",
 ]
 
@@ -298,13 +299,20 @@ def _one_line(exc: BaseException) -> str:
 
 
 def _fingerprint(entry: BatchEntry) -> str:
-    """SHA-256 of the config text and the overrides (config unreadable:
-    of the path alone, so the task is simply retried)."""
+    """SHA-256 of the config text, the overrides, the output folder and the
+    cube's size and modification time (config unreadable: of its path, so
+    the task is simply run again)."""
+    from .config import load_config
     h = hashlib.sha256()
     try:
         h.update(Path(entry.config).read_bytes())
     except OSError:
         h.update(str(entry.config).encode())
+    try:
+        st = Path(load_config(entry.config).data.cube).stat()
+        h.update(f"cube {st.st_size} {st.st_mtime_ns}".encode())
+    except (KinkfitError, OSError):
+        h.update(b"no cube")
     h.update(json.dumps({k: list(v) if isinstance(v, tuple) else v
                          for k, v in sorted(entry.overrides.items())},
                         sort_keys=True).encode())

@@ -224,8 +224,14 @@ def test_manifest_missing_file(tmp_path):
 def test_example_manifest_is_valid():
     man = load_manifest(HERE.parent / "configs" / "survey_manifest.toml")
     assert len(man.entries) >= 2
+    from kinkfit.batch import apply_overrides
+    from kinkfit.config import load_config
     for e in man.entries:
         assert e.config.exists(), e.config
+        cfg = apply_overrides(load_config(e.config), e.overrides, e.folder)
+        assert cfg.sampler.workers == 1
+        if "damping" in e.overrides:
+            assert cfg.wake.damping == e.overrides["damping"]
 
 
 # -------------------------------------------------- task, in process ---
@@ -386,9 +392,15 @@ def test_interrupted_batch_resumes_without_rerunning(tmp_path, client):
     third = run_batch(path, client=client, fit_fn=standin_fit, resume=True)
     assert sorted(third.ran) == ["broken", "one", "two"]
 
-    # restart reruns everything and asks the fit to start afresh
-    fourth = run_batch(path, client=client, fit_fn=standin_fit, restart=True)
+    # a replaced cube (new size / mtime) also makes a complete task run again
+    time.sleep(0.01)
+    (tmp_path / "cube.fits").write_bytes(b"another stand-in cube")
+    fourth = run_batch(path, client=client, fit_fn=standin_fit, resume=True)
     assert sorted(fourth.ran) == ["broken", "one", "two"]
+
+    # restart reruns everything and asks the fit to start afresh
+    fifth = run_batch(path, client=client, fit_fn=standin_fit, restart=True)
+    assert sorted(fifth.ran) == ["broken", "one", "two"]
     assert _calls(tmp_path / "out" / "one")[-1]["resume"] is False
 
 
