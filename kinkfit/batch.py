@@ -615,6 +615,9 @@ def run_batch(manifest, *, scheduler: str | None = None,
         A batch state exists and neither ``resume`` nor ``restart`` is set.
     """
     t0 = time.perf_counter()
+    if resume and restart:
+        raise KinkfitError("--resume and --restart exclude each other",
+                           key="restart")
     man = manifest if isinstance(manifest, BatchManifest) else \
         load_manifest(manifest)
     state_path = man.state_path

@@ -216,6 +216,13 @@ def test_manifest_bad_values(text, key):
     assert err.value.key == key
 
 
+def test_resume_and_restart_exclude_each_other(tmp_path):
+    from kinkfit.errors import KinkfitError
+    path = _survey(tmp_path, [{"name": "a", "config": "disk.toml"}])
+    with pytest.raises(KinkfitError, match="exclude each other"):
+        run_batch(path, resume=True, restart=True)
+
+
 def test_manifest_missing_file(tmp_path):
     with pytest.raises(InputFileError, match="manifest file not found"):
         load_manifest(tmp_path / "nope.toml")
