@@ -17,7 +17,7 @@ def _figure(fig, figsize):
     if fig is not None:
         return fig
     from matplotlib.figure import Figure
-    return Figure(figsize=figsize)
+    return Figure(figsize=figsize, layout="constrained")
 
 
 def rank_figure(ranks, n_rank: int, names, *, nbins: int | None = None, fig=None):

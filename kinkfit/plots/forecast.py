@@ -18,7 +18,7 @@ def _axes(fig, ax, figsize, ncols=1):
         axes = np.atleast_1d(ax)
         return axes[0].figure, axes
     if fig is None:
-        fig = Figure(figsize=figsize)
+        fig = Figure(figsize=figsize, layout="constrained")
     axes = np.atleast_1d(fig.subplots(1, ncols, squeeze=False)[0])
     return fig, axes
 
