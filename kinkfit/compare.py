@@ -43,7 +43,12 @@ path                               content
                                    ``n_points``, ``allow_mismatch``,
                                    ``mismatches`` (list of one-line texts,
                                    empty when all checks passed),
-                                   ``cube_sha256``, ``traced_sha256``
+                                   ``cube_sha256``, ``traced_sha256`` (of
+                                   the first file), ``caution``;
+                                   ``planet_vs_baseline_planet``,
+                                   ``_baseline``, ``_delta_elpd``, ``_se``
+                                   (best planet fit minus the baseline,
+                                   paired; absent without a baseline)
 ``/assumptions`` attrs             per assumption (file order): ``names``,
                                    ``files``, ``file_sha256``, ``damping``,
                                    ``is_baseline`` (int 0/1),
@@ -61,6 +66,8 @@ path                               content
                                    ``p_waic``
 ``/loo/pointwise_elpd``            (n_assumptions, n_points) elpd_loo,i
 ``/loo/pareto_k``                  (n_assumptions, n_points) k-hat_i
+                                   (both NaN-padded when ``allow_mismatch``
+                                   let different point counts through)
 =================================  =========================================
 """
 
@@ -522,9 +529,22 @@ def comparison_table(names, results, stats, loos, waics, diffs,
     t["se_diff"].description = "standard error of elpd_diff (paired over " \
                                "points)"
     t.meta["reference"] = reference
+    t.meta["n_points"] = int(next(iter(loos.values())).n_points)
     t.meta["parameters"] = list(params)
     t.meta["caution"] = CAUTION_TEXT
     return t
+
+
+def _planet_vs_baseline(names, results, loos, same_points) -> dict:
+    """Best planet fit minus the baseline: paired elpd difference and SE."""
+    planets = [n for n, r in zip(names, results) if not r.is_baseline]
+    bases = [n for n, r in zip(names, results) if r.is_baseline]
+    if not (planets and bases and same_points):
+        return {}
+    best = max(planets, key=lambda n: loos[n].elpd_loo)
+    d = loos[best].pointwise_elpd - loos[bases[0]].pointwise_elpd
+    return {"planet": best, "baseline": bases[0],
+            "delta_elpd": float(d.sum()), "se": _se(d)}
 
 
 def _units(results, params):
@@ -598,6 +618,16 @@ def _markdown(t, params, mismatches) -> str:
               "2017). Points with Pareto k > 0.7 make the PSIS-LOO value of "
               "that model unreliable; refit without them or treat the "
               "ranking as indicative.", ""]
+    vs = t.meta.get("planet_vs_baseline") or {}
+    if vs:
+        lines += [f"Best planet fit `{vs['planet']}` against the planet-free "
+                  f"`{vs['baseline']}`: Δelpd = {vs['delta_elpd']:.1f} ± "
+                  f"{vs['se']:.1f} nats (paired over the "
+                  f"{t.meta.get('n_points', '')} traced points).", ""]
+    else:
+        lines += ["**No planet-free baseline among the compared fits**: "
+                  "fit one (`wake.baseline = true`) before reading anything "
+                  "into the planet parameters.", ""]
     if mismatches:
         lines += ["**Compared despite mismatches (allow_mismatch):**", ""]
         lines += [f"- {m}" for m in mismatches] + [""]
@@ -631,7 +661,8 @@ def _now_utc() -> str:
 
 
 def _write_h5(path, *, names, files, results, stats, loos, waics, diffs,
-              params, units, reference, mismatches, allow_mismatch):
+              params, units, reference, mismatches, allow_mismatch,
+              versus=None):
     import h5py
 
     from . import __version__
@@ -658,6 +689,8 @@ def _write_h5(path, *, names, files, results, stats, loos, waics, diffs,
             f.attrs["cube_sha256"] = results[0].cube_sha256
             f.attrs["traced_sha256"] = traced_sha256(results[0])
             f.attrs["caution"] = CAUTION_TEXT
+            for key, val in (versus or {}).items():
+                f.attrs[f"planet_vs_baseline_{key}"] = val
             g = f.create_group("assumptions", track_order=True)
             g.attrs["names"] = np.array(names, dtype=sdt)
             g.attrs["files"] = np.array([str(x) for x in files], dtype=sdt)
@@ -695,11 +728,14 @@ def _write_h5(path, *, names, files, results, stats, loos, waics, diffs,
                 "p_waic": [waics[n].p_waic for n in names]}
             for key, vals in scal.items():
                 lo.create_dataset(key, data=np.asarray(vals))
-            for key, attr in (("pointwise_elpd", "pointwise_elpd"),
-                              ("pareto_k", "pareto_k")):
-                lo.create_dataset(key, data=np.vstack(
-                    [getattr(loos[n], attr) for n in names]),
-                    compression="gzip", compression_opts=4)
+            width = max(loos[n].n_points for n in names)
+            for key in ("pointwise_elpd", "pareto_k"):
+                arr = np.full((len(names), width), np.nan)
+                for a, n in enumerate(names):  # NaN-padded if npts differ
+                    v = getattr(loos[n], key)
+                    arr[a, :v.size] = v
+                lo.create_dataset(key, data=arr, compression="gzip",
+                                  compression_opts=4)
         os.replace(tmp, path)
     except BaseException:
         try:
@@ -851,11 +887,14 @@ def compare_results(paths: Sequence, folder, *, reference: str | None = None,
     table = comparison_table(names, results, stats, loos, waics, diffs,
                              params, reference=reference_name)
     table.meta["mismatches"] = list(mismatches)
+    table.meta["planet_vs_baseline"] = _planet_vs_baseline(
+        names, results, loos, same_points)
     units = _units(results, params)
     _write_h5(out, names=names, files=files, results=results, stats=stats,
               loos=loos, waics=waics, diffs=diffs, params=params,
               units=units, reference=reference_name, mismatches=mismatches,
-              allow_mismatch=allow_mismatch)
+              allow_mismatch=allow_mismatch,
+              versus=table.meta["planet_vs_baseline"])
     table.write(folder / "comparison.ecsv", format="ascii.ecsv",
                 overwrite=True)
     plain = table.copy()  # CSV: full precision (no display formats)

@@ -80,11 +80,20 @@ def overlay_corner_figure(results, names, params=("mass", "radius", "azimuth"),
                       fill_contours=False, levels=_LEVELS, smooth=1.0,
                       label_kwargs={"fontsize": 9})
         handles.append(Line2D([], [], color=colour, lw=2, label=str(name)))
-    fig.legend(handles=handles, loc="upper right", frameon=False,
-               fontsize=9, title="damping assumption")
+    # corner scales each 1-D panel to the first fit drawn: rescale to all
+    axes = np.array(fig.axes).reshape(k, k)
+    for j in range(k):
+        peak = max(np.max(np.histogram(cols[j][i], bins=bins, range=ranges[j],
+                                       density=True)[0])
+                   for i in range(len(results)))
+        axes[j, j].set_ylim(0.0, 1.1 * peak)
+    fig.legend(handles=handles, loc="upper right",
+               bbox_to_anchor=(0.97, 0.9), frameon=False, fontsize=9,
+               title="damping assumption", title_fontsize=9)
     title = r0.title or "posterior"
-    fig.suptitle(f"{title}: planet parameters under each assumption "
-                 f"(conditional on the wake model)", fontsize=10)
+    fig.suptitle(f"{title}: planet parameters under each assumption\n"
+                 f"(conditional on the wake model)", fontsize=10, x=0.97,
+                 y=0.99, ha="right")
     return fig
 
 
@@ -129,5 +138,8 @@ def elpd_figure(table, pareto_k: dict, fig=None):
     ax2.set_xlabel("traced point index")
     ax2.set_ylabel(r"Pareto $\hat k$")
     ax2.legend(fontsize=8, frameon=False, loc="upper right")
-    fig.subplots_adjust(left=0.14, right=0.98, bottom=0.16, wspace=0.3)
+    fig.suptitle("PSIS-LOO comparison (Vehtari, Gelman & Gabry 2017)",
+                 fontsize=10)
+    fig.subplots_adjust(left=0.14, right=0.98, bottom=0.16, top=0.88,
+                        wspace=0.3)
     return fig
