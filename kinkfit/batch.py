@@ -899,7 +899,7 @@ def survey_mass_figure(table, *, fig=None, ax=None):
     import matplotlib
     if fig is None and ax is None:
         from matplotlib.figure import Figure
-        fig = Figure(figsize=(6.4, 1.2 + 0.35 * max(len(table), 1)))
+        fig = Figure(figsize=(7.2, 1.2 + 0.35 * max(len(table), 1)))
     if ax is None:
         ax = fig.add_subplot(1, 1, 1)
     fig = ax.figure
@@ -910,8 +910,8 @@ def survey_mass_figure(table, *, fig=None, ax=None):
     assumptions = sorted({str(a) for a, k in zip(table["assumption"], ok) if k})
     colours = matplotlib.rcParams["axes.prop_cycle"].by_key().get(
         "color", ["k"])
-    labels = [f"{d} · {a}" for d, a in zip(table["disk"],
-                                           table["assumption"])]
+    labels = [f"{d} · {a}" if a != "-" else str(d)
+              for d, a in zip(table["disk"], table["assumption"])]
     y = np.arange(len(table))[::-1]
     for i, a in enumerate(assumptions):
         sel = ok & (np.asarray(table["assumption"]).astype(str) == a)
@@ -926,10 +926,23 @@ def survey_mass_figure(table, *, fig=None, ax=None):
         ax.annotate(f"({reason})", (0.02, y[k]),
                     xycoords=("axes fraction", "data"), va="center",
                     fontsize=8, color="0.4")
+    dbic = np.asarray(table["delta_bic"], dtype=float)
+    for k in np.flatnonzero(ok & np.isfinite(dbic)):
+        ax.annotate(f"ΔBIC {dbic[k]:+.1f}", (1.02, y[k]),
+                    xycoords=("axes fraction", "data"), ha="left",
+                    va="center", fontsize=8, color="0.3",
+                    annotation_clip=False)
     ax.set_yticks(y)
     ax.set_yticklabels(labels)
     if ok.any() and np.all(lo[ok] > 0):
+        from matplotlib.ticker import FuncFormatter
         ax.set_xscale("log")
+        fmt = FuncFormatter(lambda v, _: f"{v:g}")
+        ax.xaxis.set_major_formatter(fmt)
+        def minor(v, _):
+            mant = v / 10.0 ** math.floor(math.log10(v)) if v > 0 else 0.0
+            return f"{v:g}" if round(mant) in (2, 5) else ""
+        ax.xaxis.set_minor_formatter(FuncFormatter(minor))
     ax.set_xlabel(r"planet mass $M_p$ [$M_{\rm J}$] (median, 16th–84th "
                   r"percentiles)")
     ax.set_ylabel("disk · assumption")

@@ -517,7 +517,7 @@ def test_survey_table_from_summaries_units_and_figure():
     assert len(fig.axes) == 1
     assert "M_{\\rm J}" in ax.get_xlabel()
     assert [x.get_text() for x in ax.get_yticklabels()] == [
-        "d1 · viscous", "d1 · baseline", "d2 · -"]
+        "d1 · viscous", "d1 · baseline", "d2"]
     # the one mass bar spans [p16, p84]
     seg = ax.collections[0].get_segments()[0]
     assert seg[0][0] == pytest.approx(1.5) and seg[1][0] == pytest.approx(2.6)
