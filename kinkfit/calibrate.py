@@ -377,7 +377,12 @@ def _one_line(exc: BaseException) -> str:
 
 
 def _run_one(inj: Injection, posterior_fn, resume: bool) -> dict:
-    """Run one injection; a JSON-able record (never raises a KinkfitError)."""
+    """Run one injection; a JSON-able record.
+
+    Status ``done``, ``failed`` (a :class:`KinkfitError`: bad draw, too few
+    traced points...) or ``error`` (an unexpected exception, logged with its
+    traceback); both of the latter are retried by a resumed campaign.
+    """
     t0 = time.perf_counter()
     rec = {"index": inj.index, "values": inj.values, "truths": inj.truths,
            "noise_seed": inj.noise_seed, "status": "failed", "error": None,
@@ -395,6 +400,10 @@ def _run_one(inj: Injection, posterior_fn, resume: bool) -> dict:
     except KinkfitError as exc:
         rec["error"] = _one_line(exc)
         log.warning("injection %d failed: %s", inj.index, rec["error"])
+    except Exception as exc:  # noqa: BLE001 - one bad injection must not end a campaign
+        rec["error"] = _one_line(exc)
+        rec["status"] = "error"
+        log.exception("injection %d raised an unexpected error", inj.index)
     rec["seconds"] = time.perf_counter() - t0
     return rec
 

@@ -182,3 +182,28 @@ def test_bad_inputs_raise(parts):
         run_forecast(geom, em, disk, damp, planet_r_au=R_P, planet_phi_rad=0.0,
                      channel_widths_kms=[0.0])
     assert issubclass(ConfigError, KinkfitError)
+
+
+def test_cli_forecast_and_errors(tmp_path, capsys):
+    from kinkfit.cli import main
+    path = tmp_path / "f.toml"
+    path.write_text(CONFIG)
+    out = tmp_path / "fc"
+    rc = main(["forecast", str(path), "--masses", "0.5", "1", "2", "--offsets", "0",
+               "0.2", "--beams", "0.1", "0.2", "--channel-widths", "0.1", "0.3",
+               "-o", str(out)])
+    assert rc == 0
+    text = capsys.readouterr().out
+    assert text.count("minimum mass") == 4
+    for name in ("forecast_min_mass.ecsv", "forecast_amplitude.md",
+                 "forecast_amplitude.png", "forecast_min_mass.png"):
+        assert (out / name).exists()
+    # no [synth.truth]: a one-line error, exit status 2
+    bare = tmp_path / "bare.toml"
+    bare.write_text(CONFIG.split("[synth.truth]")[0])
+    assert main(["forecast", str(bare)]) == 2
+    assert "synth.truth" in capsys.readouterr().err
+    nosynth = tmp_path / "nosynth.toml"
+    nosynth.write_text(CONFIG.split("[synth]")[0])
+    assert main(["calibrate", str(nosynth), "--injections", "2"]) == 2
+    assert "[synth]" in capsys.readouterr().err
