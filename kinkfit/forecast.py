@@ -729,7 +729,7 @@ def write_forecast_tables(res: ForecastResult, folder) -> list:
 
 # -------------------------------------------------------------- validation ---
 def traced_kinks(geom, setup, emission, perturbation, *, min_snr: float = 3.0,
-                 points_per_beam: float = 2.0, smearing_free: bool = True):
+                 points_per_beam: float = 2.0):
     """Kink amplitudes measured by tracing noiseless synthetic cubes.
 
     Two cubes are made with :func:`kinkfit.synth.make_cube` (no noise), with
