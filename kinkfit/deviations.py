@@ -6,8 +6,10 @@ background iso-velocity curve ``V_bg = v_i``, measured along ``grad V_bg``
 ``d_i = (V_bg(x_i) - v_i) / |grad V_bg|`` (PHYSICS.md section 7).  Where
 ``|d_i|`` exceeds ``newton_threshold`` beams, the foot of the perpendicular on
 the curve is found by Newton steps along the gradient,
-``f <- f - (V_bg(f) - v) grad V / |grad V|^2``, and ``d_i`` becomes the signed
-length ``|x_i - f|``.
+``f <- f - (V_bg(f) - v) grad V / |grad V|^2``, alternated with slides along
+the curve's tangent, and the geometric distance ``|x_i - f|`` is recorded as
+``distance_arcsec``.  ``offset_arcsec`` stays the first-order value, which
+is what the planet model predicts exactly (see :func:`measure_deviations`).
 
 A planet (or any velocity perturbation) seen with line-of-sight excess
 ``dv_los = a_r dv_r + a_phi dv_phi`` shifts the emission to where
@@ -42,7 +44,7 @@ _SURF = {0: "front", 1: "back"}
 
 _DEV_FIELDS = ("r_au", "phi_rad", "z_au", "a_r", "a_phi",
                "grad_kms_per_arcsec", "offset_arcsec", "offset_raw_arcsec",
-               "bias_arcsec", "sigma_arcsec")
+               "bias_arcsec", "sigma_arcsec", "distance_arcsec")
 
 
 def _ro(a):
@@ -74,6 +76,10 @@ class Deviations:
         Subtracted bias (0 where none was applied).
     sigma_arcsec : ndarray
         1-sigma error of the offset, arcsec.
+    distance_arcsec : ndarray
+        Geometric signed distance from the curve (Newton-refined where the
+        first-order offset exceeds ``newton_threshold_beams``), minus the
+        bias; equals ``offset_arcsec`` to first order.
     meta : dict
     """
 
@@ -88,10 +94,13 @@ class Deviations:
     offset_raw_arcsec: np.ndarray
     bias_arcsec: np.ndarray
     sigma_arcsec: np.ndarray
+    distance_arcsec: np.ndarray = None
     meta: dict = field(default_factory=dict, compare=False)
 
     def __post_init__(self):
         n = len(self.ridges)
+        if self.distance_arcsec is None:
+            object.__setattr__(self, "distance_arcsec", self.offset_arcsec)
         for name in _DEV_FIELDS:
             a = _ro(getattr(self, name))
             if a.shape != (n,):
@@ -135,7 +144,8 @@ class Deviations:
     def from_dict(cls, arrays: dict, meta=None) -> "Deviations":
         from .trace import Ridges
         return cls(Ridges.from_dict(arrays),
-                   **{k: np.asarray(arrays[k]) for k in _DEV_FIELDS},
+                   **{k: np.asarray(arrays[k]) for k in _DEV_FIELDS
+                      if k in arrays},
                    meta=dict(meta or {}))
 
 
@@ -188,17 +198,30 @@ def signed_offsets(geom, x, y, v, surface, *, newton_threshold_arcsec=None,
                                   x.shape)[m]
             big = np.flatnonzero(np.abs(d) > thr)
             if big.size:
-                fx, fy = x[m][big].copy(), y[m][big].copy()
+                px, py = x[m][big], y[m][big]
                 vv = v[m][big]
-                for _ in range(int(newton_steps)):
-                    Vf = background_velocity(geom, fx, fy, name)
-                    gfx, gfy = velocity_gradient(geom, fx, fy, name)
-                    g2 = gfx ** 2 + gfy ** 2
-                    step = (Vf - vv) / g2
-                    ok = np.isfinite(step)
-                    fx = np.where(ok, fx - step * gfx, fx)
-                    fy = np.where(ok, fy - step * gfy, fy)
-                dist = np.hypot(x[m][big] - fx, y[m][big] - fy)
+                fx, fy = px.copy(), py.copy()
+
+                def onto_curve(fx, fy):
+                    for _ in range(int(newton_steps)):
+                        Vf = background_velocity(geom, fx, fy, name)
+                        gfx, gfy = velocity_gradient(geom, fx, fy, name)
+                        step = (Vf - vv) / (gfx ** 2 + gfy ** 2)
+                        ok = np.isfinite(step)
+                        fx = np.where(ok, fx - step * gfx, fx)
+                        fy = np.where(ok, fy - step * gfy, fy)
+                    return fx, fy, gfx, gfy
+
+                # Newton onto the curve, then slide along its tangent to the
+                # foot of the perpendicular and return onto the curve
+                fx, fy, gfx, gfy = onto_curve(fx, fy)
+                for _ in range(3):
+                    gn = np.hypot(gfx, gfy)
+                    tx, ty = -gfy / gn, gfx / gn
+                    along = (px - fx) * tx + (py - fy) * ty
+                    along = np.where(np.isfinite(along), along, 0.0)
+                    fx, fy, gfx, gfy = onto_curve(fx + along * tx, fy + along * ty)
+                dist = np.hypot(px - fx, py - fy)
                 refined = np.sign(d[big]) * dist
                 dd = d.copy()
                 dd[big] = np.where(np.isfinite(refined), refined, d[big])
@@ -212,6 +235,15 @@ def measure_deviations(ridges, fit_or_geom, *, bias=None,
                        newton_threshold_beams: float = 0.3) -> Deviations:
     """Offsets of the traced points from the background disk.
 
+    ``offset_arcsec`` is the first-order offset ``(V_bg(x_i) - v_i) /
+    |grad V_bg(x_i)|`` minus the bias.  This is the quantity the planet
+    model predicts exactly: a perturbation moves the emission to where
+    ``V_bg + dv_los = v``, so at the traced point ``(V_bg - v) / |grad V| =
+    -dv_los / |grad V|`` holds without a small-offset approximation.  The
+    Newton-refined geometric distance to the curve (where the first-order
+    value exceeds ``newton_threshold_beams``) is kept as
+    ``distance_arcsec`` for display and diagnostics.
+
     Parameters
     ----------
     ridges : kinkfit.trace.Ridges
@@ -222,8 +254,8 @@ def measure_deviations(ridges, fit_or_geom, *, bias=None,
         subtracted.  A :class:`SmearingBias` must have been estimated for
         these ridges.
     newton_threshold_beams : float
-        First-order offsets larger than this (beam FWHM) are refined with
-        Newton steps.
+        First-order offsets larger than this (beam FWHM) get a refined
+        ``distance_arcsec``.
 
     Returns
     -------
@@ -233,7 +265,8 @@ def measure_deviations(ridges, fit_or_geom, *, bias=None,
     geom = _geometry_of(fit_or_geom)
     n = len(ridges)
     x, y = ridges.x_arcsec, ridges.y_arcsec
-    off, grad = signed_offsets(
+    off, grad = signed_offsets(geom, x, y, ridges.velocity_kms, ridges.surface)
+    dist, _ = signed_offsets(
         geom, x, y, ridges.velocity_kms, ridges.surface,
         newton_threshold_arcsec=newton_threshold_beams * ridges.beam_fwhm_arcsec)
     r = np.full(n, np.nan)
@@ -256,7 +289,7 @@ def measure_deviations(ridges, fit_or_geom, *, bias=None,
     if bias is not None and hasattr(bias, "meta"):
         meta["bias"] = dict(bias.meta)
     return Deviations(ridges, r, phi, z, a_r, a_phi, grad, off - b, off, b,
-                      ridges.sigma_arcsec, meta=meta)
+                      ridges.sigma_arcsec, dist - b, meta=meta)
 
 
 # ---------------------------------------------------------------------------
@@ -437,9 +470,45 @@ def model_cube(cube, geom, emission, *, oversample: int = 3):
 
 
 
+def _brightness_correction(ridges, traced, idx, geom, emission):
+    """Update gamma, r_char and back_ratio from data / model amplitudes.
+
+    ``ln(A_data / A_model) = c - d_gamma ln r - d_inv r^2`` (front points,
+    linear least squares) and the median back-to-front ratio of
+    ``A_data / A_model``.
+    """
+    from .geometry import sky_to_disk
+    a_d = ridges.amplitude[idx]
+    a_m = traced.amplitude
+    surf = ridges.surface[idx]
+    r = np.full(idx.size, np.nan)
+    for code, name in _SURF.items():
+        m = surf == code
+        if np.any(m):
+            r[m] = sky_to_disk(geom, ridges.x_arcsec[idx][m],
+                               ridges.y_arcsec[idx][m], name)[0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        q = np.log(a_d / a_m)
+    out = {}
+    f = (surf == 0) & np.isfinite(q) & np.isfinite(r) & (r > 0)
+    if np.sum(f) >= 20:
+        A = np.column_stack([np.ones(f.sum()), -np.log(r[f]), -r[f] ** 2])
+        coef, *_ = np.linalg.lstsq(A, q[f], rcond=None)
+        gamma = float(np.clip(emission.gamma + coef[1], 0.0, 3.0))
+        inv = float(emission.r_char_au) ** -2 + float(coef[2])
+        r_char = float(min(1.0 / math.sqrt(inv), 1e6)) if inv > 1e-12 else 1e6
+        out.update(gamma=gamma, r_char_au=r_char)
+        b = (surf == 1) & np.isfinite(q)
+        if np.sum(b) >= 10:
+            rb = float(np.exp(np.median(q[b]) - np.median(q[f])))
+            out["back_ratio"] = float(np.clip(emission.back_ratio * rb, 0.0, 1.0))
+    return out
+
+
 def estimate_smearing_bias(cube, ridges, fit_or_geom, settings, *,
                            emission=None, model=None, trace_kw=None,
-                           width_iterations: int = 2) -> SmearingBias:
+                           width_iterations: int = 2,
+                           match_brightness: bool = True) -> SmearingBias:
     """Beam-smearing bias of each traced point, from a noise-free model.
 
     A noise-free cube of the background disk (``fit_or_geom``) is made on
@@ -469,6 +538,11 @@ def estimate_smearing_bias(cube, ridges, fit_or_geom, settings, *,
         this many times by matching the median ridge width of model and data
         (``sigma_v^2 += median((w_data^2 - w_model^2) g^2)``), one model
         cube per iteration.
+    match_brightness : bool
+        In the same iterations, also correct the brightness profile
+        (``gamma``, ``r_char``) and the back/front ratio so that the model's
+        ridge amplitudes match the data's (log-ratio fitted by linear least
+        squares in ``ln r`` and ``r^2``).
 
     Returns
     -------
@@ -511,7 +585,10 @@ def estimate_smearing_bias(cube, ridges, fit_or_geom, settings, *,
         sv2 = emission.v_turb_kms ** 2 + float(np.median(dw2))
         new_sv = float(np.sqrt(max(sv2, 0.02 ** 2)))
         widths.append(new_sv)
-        emission = replace(emission, v_turb_kms=new_sv)
+        upd = {"v_turb_kms": new_sv}
+        if match_brightness:
+            upd.update(_brightness_correction(ridges, traced, idx, geom, emission))
+        emission = replace(emission, **upd)
     meta_w = {"line_sigma_iterations_kms": widths}
     off = np.full(n, np.nan)
     if idx.size:

@@ -12,14 +12,22 @@ with ``g_i = |grad V_bg|`` evaluated at the reference geometry of the round
 (updated between rounds, so the costly gradient is not recomputed at every
 function call) and ``b_i`` an optional beam-smearing bias (arcsec, along the
 gradient; see :mod:`kinkfit.deviations`).  A robust loss
-(``scipy.optimize.least_squares(loss='soft_l1')``, scale ``f_scale``
+(``scipy.optimize.least_squares(loss='cauchy')``, scale ``f_scale = 2``
 residual units) keeps a planet's kink from dragging the background.
 
 Uncertainties: ``cov = (J^T J)^-1 s^2`` with ``J`` the loss-weighted Jacobian
 returned by ``least_squares`` and ``s = 1.4826 * median|e_i|`` the robust
 scatter of the residuals (the normal-equation covariance of a least-squares
-fit, rescaled by the measured residual scale).  Points a bit more than a
-beam apart are treated as independent (see :mod:`kinkfit.trace`).
+fit, rescaled by the measured residual scale).  Points are not fully
+independent (noise correlation ~0.25 at one beam along a ridge, line
+profiles spanning adjacent channels, shared errors of the smearing-bias
+model), so the covariance is multiplied by ``max(1, median_k C_kk / V_kk)``
+where ``C`` is the cluster-robust ("sandwich") covariance
+``A^-1 (sum_g s_g s_g^T) A^-1 G/(G-1)`` over cells ``g`` of the disk
+(radius x azimuth, ``cluster_cells``; ``A = J^T J``, ``s_g = J_g^T e_g``),
+and ``V`` the plain one (``meta['covariance_inflation']``).  Disk cells
+capture the slowly varying errors of the smearing-bias model, which are
+shared by neighbouring points of many channels.
 """
 
 from __future__ import annotations
@@ -197,9 +205,28 @@ def _gradient(geom, x, y, surf):
     return out
 
 
+def _disk_cells(geom, x, y, surf, cells):
+    """Cluster label of each point: equal-count radius bins x azimuth sectors."""
+    from .geometry import sky_to_disk
+    nr, nphi = int(cells[0]), int(cells[1])
+    r = np.full(x.shape, np.nan)
+    phi = np.full(x.shape, np.nan)
+    for code, name in _SURF.items():
+        m = surf == code
+        if np.any(m):
+            r[m], phi[m], _ = sky_to_disk(geom, x[m], y[m], name)
+    r = np.where(np.isfinite(r), r, np.nanmedian(r) if np.any(np.isfinite(r)) else 0.0)
+    phi = np.where(np.isfinite(phi), phi, 0.0)
+    edges = np.quantile(r, np.linspace(0, 1, nr + 1)[1:-1]) if nr > 1 else []
+    rb = np.searchsorted(edges, r)
+    pb = np.floor((phi + np.pi) / (2 * np.pi) * nphi).astype(int) % nphi
+    return rb * nphi + pb
+
+
 def fit_background(ridges, geom0, free=DEFAULT_FREE, *, bias=None,
-                   loss: str = "soft_l1", f_scale: float = 3.0,
-                   inner_rounds: int = 2, max_nfev: int = 200) -> BackgroundFit:
+                   loss: str = "cauchy", f_scale: float = 2.0,
+                   inner_rounds: int = 2, max_nfev: int = 200,
+                   cluster_cells=(4, 8)) -> BackgroundFit:
     """Fit the background disk to traced ridge points.
 
     Parameters
@@ -215,8 +242,10 @@ def fit_background(ridges, geom0, free=DEFAULT_FREE, *, bias=None,
     bias : ndarray, shape (npoints,), optional
         Beam-smearing bias of each point along the gradient, arcsec,
         subtracted from the measured offsets.
-    loss : {'soft_l1', 'cauchy', 'huber', 'arctan', 'linear'}
-        Robust loss of ``scipy.optimize.least_squares``.
+    loss : {'cauchy', 'soft_l1', 'huber', 'arctan', 'linear'}
+        Robust loss of ``scipy.optimize.least_squares``; Cauchy (default)
+        down-weights a planet's kink more firmly than soft-l1, which let
+        the kink pull the PA by ~3 sigma in our synthetic tests.
     f_scale : float
         Residual scale (sigma units) where the loss turns robust.
     inner_rounds : int
@@ -224,6 +253,10 @@ def fit_background(ridges, geom0, free=DEFAULT_FREE, *, bias=None,
         geometry.
     max_nfev : int
         Function evaluations per round.
+    cluster_cells : (int, int) or None
+        Radial (equal-count) and azimuthal cells of the disk that define the
+        clusters of the cluster-robust covariance used to inflate the errors
+        for spatially correlated residuals; None disables.
 
     Returns
     -------
@@ -290,6 +323,26 @@ def fit_background(ridges, geom0, free=DEFAULT_FREE, *, bias=None,
         cov_p = np.linalg.inv(J.T @ J) * scat ** 2
     except np.linalg.LinAlgError:
         cov_p = np.full((len(free), len(free)), np.nan)
+    # correlated points (neighbours along a ridge, overlapping line
+    # profiles in adjacent channels, shared smearing-bias errors): inflate
+    # by the cluster-robust (sandwich) covariance over blocks of channels
+    inflation, nclus = 1.0, 0
+    if cluster_cells and np.all(np.isfinite(cov_p)):
+        z = (e / f_scale) ** 2
+        w = {"soft_l1": 1.0 / np.sqrt(1.0 + z), "cauchy": 1.0 / (1.0 + z),
+             "huber": np.where(z <= 1, 1.0, 1.0 / np.sqrt(np.maximum(z, 1e-300))),
+             "arctan": 1.0 / (1.0 + z ** 2)}.get(loss, np.ones_like(z))
+        rt = e * np.sqrt(w)
+        block = _disk_cells(geom_of(p), x, y, surf, cluster_cells)
+        groups = np.unique(block)
+        nclus = groups.size
+        if nclus > 2 * len(free):
+            Ainv = np.linalg.inv(J.T @ J)
+            S = np.array([J[block == gk].T @ rt[block == gk] for gk in groups])
+            cov_cl = Ainv @ (S.T @ S) @ Ainv * nclus / (nclus - 1)
+            ratio = np.diag(cov_cl) / np.diag(cov_p)
+            inflation = float(max(1.0, np.median(ratio)))
+            cov_p = cov_p * inflation
     cov = cov_p * np.outer(scale, scale)
     err = np.sqrt(np.clip(np.diag(cov), 0, None))
     values = start + scale * p

@@ -439,7 +439,7 @@ def _window_limits(v_own, v_other, v, grid, cx, cy, ux, uy, half, fwhm,
 
 def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
                  max_window_beams: float = 4.0, min_window_beams: float = 0.75,
-                 clearance_beams: float = 0.5, max_sigma_beams: float = 0.15,
+                 clearance_beams: float = 0.5, max_sigma_beams: float = 0.5,
                  max_width_ratio: float | None = 2.0,
                  channels=None,
                  cuts=None) -> Ridges:
