@@ -92,10 +92,13 @@ def crashing_fit(cfg, **kw):
     raise RuntimeError("simulated crash")
 
 
-def sleepy_fit(cfg, **kw):
-    """standin_fit, 3 s late for the entry whose folder is named 'slow'."""
-    if Path(cfg.output.folder).name == "slow":
-        time.sleep(3.0)
+def held_fit(cfg, **kw):
+    """standin_fit that first waits (up to 60 s) while ``<folder>/HOLD``
+    exists."""
+    hold = Path(cfg.output.folder) / "HOLD"
+    t_end = time.monotonic() + 60.0
+    while hold.exists() and time.monotonic() < t_end:
+        time.sleep(0.1)
     return standin_fit(cfg, **kw)
 
 
@@ -411,47 +414,59 @@ def test_interrupted_batch_resumes_without_rerunning(tmp_path, client):
     assert _calls(tmp_path / "out" / "one")[-1]["resume"] is False
 
 
-def test_client_interrupt_keeps_state_then_resumes(tmp_path, client,
-                                                  monkeypatch):
-    """Ctrl-C in the client after the first task finished: the state file
-    says which task is done and which was interrupted; --resume reruns only
-    the latter."""
-    import dask.distributed as dd
-    real = dd.as_completed
-
-    def interrupted_after_first(futures):
-        for i, fut in enumerate(real(futures)):
-            yield fut
-            raise KeyboardInterrupt
-
+def test_sigint_to_the_client_process_then_resume(tmp_path, client):
+    """A real Ctrl-C (SIGINT) to a batch client running its own local
+    cluster: the finished task stays done, the held one is recorded
+    interrupted, the cluster is shut down, and --resume runs only the
+    latter."""
+    import signal
+    import subprocess
     path = _survey(tmp_path, [{"name": "quick", "config": "disk.toml"},
-                              {"name": "slow", "config": "disk.toml"}])
-    monkeypatch.setattr(dd, "as_completed", interrupted_after_first)
-    with pytest.raises(KeyboardInterrupt):
-        run_batch(path, client=client, fit_fn=sleepy_fit)
-    monkeypatch.setattr(dd, "as_completed", real)
-    state = read_state(tmp_path / "out" / STATE_NAME)
-    assert state["tasks"]["quick"]["status"] == "done"
-    assert state["tasks"]["slow"]["status"] == "interrupted"
-    # a cancelled task that already runs on a worker is not killed by Dask;
-    # wait for it so that the resumed run does not overlap it
-    deadline = time.monotonic() + 60
-    while not _calls(tmp_path / "out" / "slow") and time.monotonic() < deadline:
-        time.sleep(0.2)
-    again = run_batch(path, client=client, fit_fn=sleepy_fit, resume=True)
-    assert again.skipped == ["quick"] and again.ran == ["slow"]
-    assert again.summaries["slow"]["status"] == "done"
+                              {"name": "held", "config": "disk.toml"}])
+    (tmp_path / "out" / "held").mkdir(parents=True)
+    (tmp_path / "out" / "held" / "HOLD").write_text("")
+    script = (f"import sys\nsys.path.insert(0, {str(HERE)!r})\n"
+              "import test_batch as tb\n"
+              "from kinkfit.batch import run_batch\n"
+              "if __name__ == '__main__':\n"
+              f"    run_batch({str(path)!r}, workers=2, fit_fn=tb.held_fit)\n")
+    (tmp_path / "client.py").write_text(script)
+    proc = subprocess.Popen([sys.executable, str(tmp_path / "client.py")],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    state_path = tmp_path / "out" / STATE_NAME
+    try:
+        deadline = time.monotonic() + 90
+        while time.monotonic() < deadline:
+            if state_path.exists():
+                st = read_state(state_path)["tasks"]
+                if st.get("quick", {}).get("status") == "done":
+                    break
+            assert proc.poll() is None, proc.communicate()
+            time.sleep(0.2)
+        else:
+            pytest.fail("the first task did not finish in 90 s")
+        import psutil   # a dependency of distributed
+        children = psutil.Process(proc.pid).children(recursive=True)
+        assert children                   # the local cluster's processes
+        proc.send_signal(signal.SIGINT)
+        _, err = proc.communicate(timeout=60)
+        _, alive = psutil.wait_procs(children, timeout=20)
+        assert alive == []                # the cluster was shut down
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    assert b"KeyboardInterrupt" in err
+    tasks = read_state(state_path)["tasks"]
+    assert tasks["quick"]["status"] == "done"
+    assert tasks["quick"]["summary"]["pid"] not in (proc.pid, os.getpid())
+    assert tasks["held"]["status"] == "interrupted"
+    assert _calls(tmp_path / "out" / "held") == []   # killed while held
+    (tmp_path / "out" / "held" / "HOLD").unlink()
+    again = run_batch(path, client=client, fit_fn=held_fit, resume=True)
+    assert again.skipped == ["quick"] and again.ran == ["held"]
+    assert again.summaries["held"]["status"] == "done"
     assert len(_calls(tmp_path / "out" / "quick")) == 1
-
-
-def test_own_local_cluster(tmp_path):
-    """The default path: run_batch starts (and stops) its own LocalCluster."""
-    path = _survey(tmp_path, [{"name": "solo", "config": "disk.toml",
-                               "baseline": False}])
-    run = run_batch(path, workers=1, fit_fn=standin_fit)
-    assert run.summaries["solo"]["status"] == "done"
-    assert run.summaries["solo"]["pid"] != os.getpid()
-    assert list(run.summaries["solo"]["fits"]) == ["none"]
 
 
 def test_cli_with_scheduler_address(tmp_path, client, capsys):
