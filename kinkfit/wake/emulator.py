@@ -1,4 +1,4 @@
-"""Wake model callables for the likelihood.
+"""Wake model callables for the likelihood: the direct reference and a fast emulator.
 
 :func:`make_fit_model` returns ``model(params, r_au, phi_rad) -> (dv_r,
 dv_phi)`` with ``params`` a dict of arrays of shape ``(m,)`` (one entry per
@@ -9,17 +9,80 @@ walker, canonical units of :mod:`kinkfit.params`) and outputs of shape
 ``method="direct"`` evaluates the reference model
 :func:`kinkfit.wake.model.wake_perturbations` walker by walker (slow; the
 reference for accuracy tests and benchmarks).
+
+``method="emulator"`` (default) evaluates the same model from tables built
+once, using the structure of the theory instead of a black-box fit
+(derivation: ``docs/physics/emulator.md``):
+
+* Mass.  Inviscid Burgers is invariant under ``chi -> A chi, t -> t/A``: the
+  solution for ``A chi0`` at time ``t`` is ``A Chi(eta, A t)`` with ``Chi`` the
+  solution for the unit profile ``chi0``.  One table of the unit solution per
+  profile covers every mass through the scaled time ``tau = A t``.
+* Exactness in ``tau``.  The entropy solution at any ``tau`` is the lower
+  convex hull of ``Psi = tau U0(y) + y^2/2`` (Hopf-Lax; see
+  :mod:`kinkfit.wake.burgers`).  ``Psi`` is affine in ``tau``, so a sample
+  leaves the hull at one time and never returns: its *death time*.  The
+  tables store the profile samples, their death times and the hull index
+  lists at a few ``tau`` nodes; at run time the solution at the requested
+  ``tau`` is rebuilt locally (characteristic positions ``y + chi0 tau`` of the
+  surviving samples, equal-area shock positions between them), so shocks sit
+  where the direct solver puts them for any ``tau`` -- no blending in time.
+* Interior columns.  Each sheet column ``X`` steepened by the planet clock is
+  ``g(X) F_X(s, tau_X)`` with ``F_X`` the Burgers solution of the universal
+  profile ``S(X, s)/|X/h_p|^(1/2)`` (sheet density over GR01's local
+  amplitude law) at ``tau_X = ((gamma+1)/2) A t'(X)``: one universal table for
+  all disks and masses.
+* Damping.  ``ln D`` is linear in ``alpha`` (viscous) or ``1/efold``; the damped
+  clock ``t' = ∫ D dt`` is recomputed exactly for each walker as a cumulative
+  sum on a fixed radial grid (a few thousand exponentials per walker).
+* Radius and azimuth.  The tables are in ``x = r/r_p``; ``c_p ∝ r_p^(-1/2)``
+  (Keplerian) scales the velocities and ``phi_p`` shifts the locus.
+
+The point loop is compiled with numba.  The reference in tests is the direct
+model itself, evaluated exactly in time (``kinkfit.wake.model._N_TIME`` raised
+above the number of points, so that :func:`~kinkfit.wake.burgers.burgers_at_times`
+solves at each point's own time instead of blending between grid times).
 """
 
 from __future__ import annotations
 
+import hashlib
+import logging
 import math
+from dataclasses import replace
 
 import numpy as np
 
-from .model import Damping, Planet, WakeDisk, wake_perturbations
+from .. import cache
+from ..constants import MJUP_PER_MSUN, keplerian_speed_kms
+from ..errors import KinkfitError, PhysicsRangeError
+from .burgers import lower_hull, pad_profile
+from .damping import Damping, DampingContext, damping_log_factor
+from .locus import shear_mach_number, wake_azimuth, wrap_angle
+from .model import (Planet, WakeDisk, _global_factors, _scaled_profile, _y_ref,
+                    default_match_h, wake_perturbations)
+from .nonlinear import (MatchProfile, _dt_dx, amplitude_factor, front_normal,
+                        matching_profile, profile_wavenumber_h)
 
-__all__ = ["make_fit_model", "DirectModel"]
+try:
+    from numba import njit
+except ImportError:  # pragma: no cover
+    def njit(*args, **kwargs):
+        def wrap(f):
+            return f
+        return wrap if not (args and callable(args[0])) else args[0]
+
+__all__ = ["make_fit_model", "DirectModel", "EmulatorModel", "EmulatorTables",
+           "build_tables", "ProfileTable", "build_profile_table", "profile_solution"]
+
+log = logging.getLogger(__name__)
+
+#: version of the table layout and algorithms (part of every cache key)
+TABLE_VERSION = 1
+_N_RADIAL = 4001     # radial grid per arm for the clocks and damping integrals
+_N_NODES = 32        # tau nodes with stored hull lists per profile
+_N_SUB = 12          # sub-steps per node interval for the death times
+_NEVER = 1e300       # death time of a sample that never leaves the hull (finite: cache check)
 
 
 def _damping_for(kind: str, params: dict, i: int) -> Damping:
@@ -55,7 +118,6 @@ class DirectModel:
         for i in range(m):
             disk = self.disk
             if "aspect_ratio" in params:
-                from dataclasses import replace
                 disk = replace(disk, aspect_p=float(params["aspect_ratio"][i]))
             planet = Planet(mass_mjup=float(params["mass"][i]),
                             r_au=float(params["radius"][i]),
@@ -67,15 +129,870 @@ class DirectModel:
         return dv_r, dv_phi
 
 
-def make_fit_model(disk: WakeDisk, damping: str, method: str = "direct"):
+# --------------------------------------------------------------------------
+# Burgers profile tables (mass-independent, exact in tau)
+# --------------------------------------------------------------------------
+
+@njit(cache=True)
+def _death_times(y, u0, nodes, nsub):  # pragma: no cover - compiled
+    """Time at which each sample leaves the lower hull of ``tau U0 + y^2/2``.
+
+    The hull is recomputed on ``nsub`` sub-steps of every node interval; a
+    sample that leaves it is given the collinearity time with its hull
+    neighbours of the previous sub-step (clipped to the sub-step).
+    """
+    n = y.shape[0]
+    death = np.full(n, _NEVER)
+    prev = np.arange(n)
+    alive = np.ones(n, dtype=np.bool_)
+    t_prev = 0.0
+    for k in range(1, nodes.shape[0]):
+        for s in range(1, nsub + 1):
+            t = nodes[k - 1] + (nodes[k] - nodes[k - 1]) * s / nsub
+            psi = t * u0 + 0.5 * y * y
+            hull = lower_hull(y, psi)
+            now = np.zeros(n, dtype=np.bool_)
+            for i in hull:
+                now[i] = True
+            for m in range(1, prev.shape[0] - 1):
+                i = prev[m]
+                if now[i] or not alive[i]:
+                    continue
+                left = prev[m - 1]
+                right = prev[m + 1]
+                w = (y[i] - y[left]) / (y[right] - y[left])
+                num = (1 - w) * 0.5 * y[left] ** 2 + w * 0.5 * y[right] ** 2 - 0.5 * y[i] ** 2
+                den = u0[i] - ((1 - w) * u0[left] + w * u0[right])
+                td = t
+                if den > 0:
+                    td = num / den
+                # the neighbours on the new hull give a second upper bound
+                jr = np.searchsorted(hull, i)
+                if 0 < jr < hull.shape[0]:
+                    left = hull[jr - 1]
+                    right = hull[jr]
+                    w = (y[i] - y[left]) / (y[right] - y[left])
+                    num = (1 - w) * 0.5 * y[left] ** 2 + w * 0.5 * y[right] ** 2 - 0.5 * y[i] ** 2
+                    den = u0[i] - ((1 - w) * u0[left] + w * u0[right])
+                    if den > 0 and num / den < td:
+                        td = num / den
+                death[i] = min(max(td, t_prev), t)
+            for i in range(n):
+                alive[i] = now[i]
+            prev = hull
+            t_prev = t
+    return death
+
+
+class ProfileTable:
+    """Packed Burgers tables of one or more unit profiles (plain arrays).
+
+    Attributes
+    ----------
+    y, chi0, u0, death : ndarray (ntot,)
+        Padded samples of every profile, their initial ``chi``, its running
+        integral ``U0`` and the death time of each sample (``inf`` = never).
+    s_off : ndarray (nprof + 1,)
+        Sample offsets of the profiles.
+    tau_nodes : ndarray (nnode_tot,)
+        Node times of every profile (first node 0), packed.
+    t_off : ndarray (nprof + 1,)
+        Node offsets of the profiles.
+    h_idx : ndarray (nh,), int16 or int32
+        Hull index lists (sample indices local to the profile) at every node, packed.
+    support : ndarray (nprof, 4)
+        ``y_L, y_R`` (first and last non-zero sample), ``-min U0`` and
+        ``U0_end - min U0``: the solution vanishes outside
+        ``[y_L - sqrt(2 tau (-min U0)), y_R + sqrt(2 tau (U0_end - min U0))]``
+        (Hopf-Lax: the zero state is the minimiser there).
+    h_off : ndarray (nnode_tot + 1,)
+        Offsets of the hull lists.
+    """
+
+    fields = ("y", "chi0", "u0", "death", "s_off", "tau_nodes", "t_off", "h_idx", "h_off",
+              "support")
+
+    def __init__(self, **arrays):
+        for k in self.fields:
+            setattr(self, k, np.ascontiguousarray(arrays[k]))
+
+    def arrays(self, prefix=""):
+        return {prefix + k: getattr(self, k) for k in self.fields}
+
+    @property
+    def tau_max(self):
+        """Largest tabulated time of each profile, ``(nprof,)``."""
+        return self.tau_nodes[self.t_off[1:] - 1]
+
+
+def build_profile_table(profiles, tau_max, *, n_nodes=_N_NODES, n_sub=_N_SUB):
+    """Tables for a list of unit profiles.
+
+    Parameters
+    ----------
+    profiles : list of (eta0, chi0) pairs of ndarray
+        Initial profiles (``eta0`` strictly increasing; vanishing at the ends).
+    tau_max : sequence of float
+        Largest time each profile will be asked for.
+
+    Returns
+    -------
+    ProfileTable
+    """
+    from .burgers import shock_formation_time
+    ys, cs, us, ds, nodes_all, hulls = [], [], [], [], [], []
+    s_off, t_off, h_off = [0], [0], [0]
+    support = []
+    for (eta0, chi0), tmax in zip(profiles, tau_max):
+        tmax = float(tmax)
+        reach_t = tmax
+        # the solution never leaves [eta0 - max|chi| t, eta0 + max|chi| t]; the N wave
+        # grows only as sqrt(2 P t) (W74 §2.9), so pad to the smaller of the two reaches
+        area = float(np.trapezoid(np.abs(chi0), eta0))
+        cmax = float(np.max(np.abs(chi0)))
+        if cmax > 0:
+            reach = min(cmax * tmax, 2.0 * math.sqrt(2.0 * area * tmax) + 10.0)
+            reach_t = reach / cmax
+        y, c, _ = pad_profile(eta0, chi0, reach_t)
+        u = np.concatenate([[0.0], np.cumsum(0.5 * (c[1:] + c[:-1]) * np.diff(y))])
+        t_sh = shock_formation_time(y, c)
+        if np.isfinite(t_sh) and t_sh < tmax:
+            nodes = np.concatenate([[0.0], np.geomspace(0.999 * t_sh, tmax * 1.0001,
+                                                        n_nodes - 1)])
+            death = _death_times(y, u, nodes, n_sub)
+        else:
+            nodes = np.array([0.0, max(tmax, 1e-300) * 1.0001])
+            death = np.full(y.size, _NEVER)
+        base = s_off[-1]
+        nz = np.nonzero(c != 0.0)[0]
+        if nz.size:
+            support.append([y[nz[0]], y[nz[-1]], -min(u.min(), 0.0), u[-1] - min(u.min(), 0.0)])
+        else:
+            support.append([0.0, 0.0, 0.0, 0.0])
+        for tk in nodes:
+            live = np.nonzero(death > tk)[0]
+            hulls.append(live.astype(np.int32))
+            h_off.append(h_off[-1] + live.size)
+        ys.append(y); cs.append(c); us.append(u); ds.append(death); nodes_all.append(nodes)
+        s_off.append(base + y.size)
+        t_off.append(t_off[-1] + nodes.size)
+    return ProfileTable(y=np.concatenate(ys), chi0=np.concatenate(cs), u0=np.concatenate(us),
+                        death=np.concatenate(ds), s_off=np.array(s_off, dtype=np.int64),
+                        tau_nodes=np.concatenate(nodes_all),
+                        t_off=np.array(t_off, dtype=np.int64),
+                        h_idx=np.concatenate(hulls).astype(
+                            np.int16 if max(np.diff(s_off)) < 32767 else np.int32),
+                        h_off=np.array(h_off, dtype=np.int64),
+                        support=np.array(support, dtype=float).reshape(-1, 4))
+
+
+@njit(cache=True)
+def _node_of(p, tau, nodes, t_off):  # pragma: no cover
+    """Index ``g`` of the node list live at ``tau`` (``nodes[g-1] <= tau < nodes[g]``), -1 beyond."""
+    n0 = t_off[p]
+    n1 = t_off[p + 1]
+    if tau > nodes[n1 - 1]:
+        return -1
+    lo = n0
+    hi = n1 - 1
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if nodes[mid] <= tau:
+            lo = mid
+        else:
+            hi = mid
+    return lo + 1
+
+
+@njit(cache=True)
+def _profile_eval(p, eta, tau, y, c, u0, death, s_off, nodes, t_off, h_idx, h_off,
+                  support):  # pragma: no cover
+    """Entropy solution of profile ``p`` at ``(eta, tau)``; NaN beyond the tables."""
+    if tau < 0.0:
+        tau = 0.0
+    g = _node_of(p, tau, nodes, t_off)
+    if g < 0:
+        return np.nan
+    return _eval_at(p, eta, tau, g, -1, y, c, u0, death, s_off, h_idx, h_off, support)[0]
+
+
+@njit(cache=True)
+def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
+             support):  # pragma: no cover
+    """Entropy solution of profile ``p`` at ``(eta, tau)`` (0 outside its support).
+
+    Same node semantics as :func:`kinkfit.wake.burgers.burgers_nodes` (hull
+    vertices at ``y + chi0 tau``, clipped at equal-area shocks, linear between).
+    ``g`` is the node list live at ``tau`` (:func:`_node_of`); ``hint`` (or -1)
+    a list position known to lie at or left of the bracket.  Returns the value
+    and the bracket's list position.
+    """
+    base = s_off[p]
+    # outside the Hopf-Lax bound of the support the zero state wins
+    if eta < support[p, 0] - math.sqrt(2.0 * tau * support[p, 2]) or \
+            eta > support[p, 1] + math.sqrt(2.0 * tau * support[p, 3]):
+        return 0.0, -1
+    a0 = h_off[g]
+    a1 = h_off[g + 1] - 1
+    first = base + h_idx[a0]
+    last = base + h_idx[a1]
+    if eta < y[first] + c[first] * tau or eta > y[last] + c[last] * tau:
+        return 0.0, -1
+    lo = a0
+    hi = a1
+    if hint >= a0:
+        lo = hint
+        hi = hint + 4 if hint + 4 < a1 else a1
+        j = base + h_idx[hi]
+        if y[j] + c[j] * tau <= eta:
+            lo = hi
+            hi = a1
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        j = base + h_idx[mid]
+        if y[j] + c[j] * tau <= eta:
+            lo = mid
+        else:
+            hi = mid
+    ia = h_idx[lo]
+    # fast path: a run of four consecutive samples, all live: no shock nearby
+    if lo - 1 >= a0 and lo + 2 <= a1 and h_idx[lo - 1] == ia - 1 and h_idx[lo + 1] == ia + 1 \
+            and h_idx[lo + 2] == ia + 2:
+        a = base + ia
+        pl = y[a] + c[a] * tau
+        pr = y[a + 1] + c[a + 1] * tau
+        if pr <= pl:
+            return c[a], lo
+        w = (eta - pl) / (pr - pl)
+        if w < 0.0:
+            w = 0.0
+        return c[a] + w * (c[a + 1] - c[a]), lo
+    # window of the superset list (live at the node before tau) around the bracket
+    m0 = lo - 2 if lo - 2 > a0 else a0
+    m1 = hi + 2 if hi + 2 < a1 else a1
+    i_start = h_idx[m0]
+    i_end = h_idx[m1]
+    b0 = h_off[g - 1]
+    b1 = h_off[g] - 1
+    lo2 = b0
+    hi2 = b1
+    while hi2 - lo2 > 1:
+        mid = (lo2 + hi2) // 2
+        if h_idx[mid] <= i_start:
+            lo2 = mid
+        else:
+            hi2 = mid
+    if h_idx[hi2] == i_start:
+        lo2 = hi2
+    # stream the live samples of the window: effective node positions as in
+    # burgers.burgers_nodes (clipped at shocks, running maximum)
+    left = base + i_start
+    p_left = y[left] + c[left] * tau
+    q = lo2 + 1
+    right = -1
+    while q <= b1 and h_idx[q] <= i_end:
+        if death[base + h_idx[q]] > tau:
+            right = base + h_idx[q]
+            break
+        q += 1
+    if right < 0:
+        return c[left], lo
+    if eta < p_left:
+        return c[left], lo
+    while True:
+        nxt = -1
+        q2 = q + 1
+        while q2 <= b1 and h_idx[q2] <= i_end:
+            if death[base + h_idx[q2]] > tau:
+                nxt = base + h_idx[q2]
+                break
+            q2 += 1
+        p_right = y[right] + c[right] * tau
+        if nxt > right + 1:
+            xs2 = (tau * (u0[nxt] - u0[right]) + 0.5 * (y[nxt] ** 2 - y[right] ** 2)) \
+                / (y[nxt] - y[right])
+            if xs2 < p_right:
+                p_right = xs2
+        gap = right > left + 1
+        xs = 0.0
+        if gap:
+            xs = (tau * (u0[right] - u0[left]) + 0.5 * (y[right] ** 2 - y[left] ** 2)) \
+                / (y[right] - y[left])
+            if xs < p_left:
+                xs = p_left
+            if xs > p_right:
+                p_right = xs
+        if p_right < p_left:
+            p_right = p_left
+        if eta <= p_right or nxt < 0:
+            if gap:
+                if eta < xs:
+                    return c[left], lo
+                return c[right], lo
+            if p_right <= p_left:
+                return c[left], lo
+            w = (eta - p_left) / (p_right - p_left)
+            if w > 1.0:
+                w = 1.0
+            return c[left] + w * (c[right] - c[left]), lo
+        left = right
+        p_left = p_right
+        right = nxt
+        q = q2
+
+
+def profile_solution(table: ProfileTable, p: int, eta, tau):
+    """Burgers solution of profile ``p`` of ``table`` at points ``eta`` and one time ``tau``.
+
+    Parameters
+    ----------
+    table : ProfileTable
+    p : int
+        Profile index.
+    eta : ndarray
+        Positions (any shape).
+    tau : float
+        Time (>= 0, within the tabulated range).
+
+    Returns
+    -------
+    ndarray
+        ``chi`` at ``eta``, same shape.
+    """
+    eta = np.asarray(eta, dtype=float)
+    out = np.empty(eta.size)
+    t = table
+    for k, e in enumerate(eta.ravel()):
+        out[k] = _profile_eval(p, float(e), float(tau), t.y, t.chi0, t.u0, t.death, t.s_off,
+                               t.tau_nodes, t.t_off, t.h_idx, t.h_off, t.support)
+    if np.any(np.isnan(out)):
+        raise PhysicsRangeError(f"time {tau!r} beyond the tabulated range of profile {p}",
+                                key="tau", value=tau)
+    return out.reshape(eta.shape)
+
+
+# --------------------------------------------------------------------------
+# tables of one disk
+# --------------------------------------------------------------------------
+
+#: largest Mp/M_th the tables cover
+A_MAX = 10.0
+#: default radial range (x = r/r_p) of the exterior tables
+X_RANGE = (0.08, 12.0)
+#: interior table: tau_max(X) = _TAU_INT * |X/h_p|^(5/2)
+_TAU_INT = 15.0 * 0.6 * 1.4
+
+
+def _sheet_digest(sheet) -> str:
+    h = hashlib.sha256()
+    for arr in (sheet.x_h, sheet.y_h, sheet.sigma, sheet.u, sheet.v):
+        h.update(np.ascontiguousarray(arr, dtype=float).tobytes())
+    return h.hexdigest()[:24]
+
+
+def _table_from(arrays, prefix):
+    return ProfileTable(**{k: arrays[prefix + k] for k in ProfileTable.fields})
+
+
+def _interior_universal(sheet, digest):
+    """Universal interior tables: sheet columns |X| <= 7 h_p resampled on ``s``."""
+    inputs = dict(sheet=digest, version=TABLE_VERSION, nodes=_N_NODES, sub=_N_SUB,
+                  tau=_TAU_INT, x_max=7.0)
+    key = cache.cache_key("wake-emulator-interior", inputs)
+    req = ("xh", "S", "Su", "Sv") + tuple("i_" + k for k in ProfileTable.fields)
+    got = cache.load_arrays(key, req)
+    if got is not None and got["S"].shape[1] == sheet.y_h.size:
+        return got
+    cols = np.abs(sheet.x_h) <= 7.0 + 1e-9
+    xh = sheet.x_h[cols]
+    y = sheet.y_h
+    fields = []
+    for f in (sheet.sigma, sheet.u, sheet.v):
+        rows = f[cols]
+        fields.append(np.stack([np.interp(y + _y_ref(xj), y, row, left=0.0, right=0.0)
+                                for xj, row in zip(xh, rows)]))
+    S = fields[0]
+    profiles, tmax = [], []
+    for xj, row in zip(xh, S):
+        dist = abs(xj)
+        if dist < 1e-9:
+            profiles.append((y.copy(), np.zeros_like(y)))
+            tmax.append(1e-6)
+            continue
+        f = row / math.sqrt(dist)
+        if xj > 0:
+            profiles.append((y.copy(), f.copy()))
+        else:
+            profiles.append((-y[::-1].copy(), f[::-1].copy()))
+        tmax.append(_TAU_INT * dist ** 2.5)
+    tab = build_profile_table(profiles, tmax)
+    out = dict(xh=xh, S=S, Su=fields[1], Sv=fields[2], **tab.arrays("i_"))
+    cache.save_arrays(key, out)
+    return out
+
+
+class EmulatorTables:
+    """Every table the emulator needs for one disk and damping kind (plain arrays).
+
+    Built by :func:`build_tables`; see the module docstring for the method.
+    """
+
+    def __init__(self, **arrays):
+        self.__dict__.update(arrays)
+
+
+def _radial_grid(side, u_max, n, a, p, q, kind, k_eta):
+    u = u_max * np.linspace(0.0, 1.0, n) ** 2
+    xs = 1.0 + side * u
+    rate = _dt_dx(xs, a, p, q)
+    rate[0] = 0.0
+    ctx = DampingContext(a, p, q, k_eta)
+    if kind == "viscous":
+        ld = damping_log_factor(xs, Damping(kind="viscous", alpha=1.0), ctx)
+    elif kind == "efold":
+        ld = damping_log_factor(xs, Damping(kind="efold", efold_rp=1.0), ctx)
+    else:
+        ld = np.zeros_like(xs)
+    ld[0] = 0.0
+    return u, rate, ld
+
+
+def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=None,
+                 use_cache: bool = True) -> EmulatorTables:
+    """Build (or load from the cache) the emulator tables of ``disk``.
+
+    Parameters
+    ----------
+    disk : WakeDisk
+        Disk; its edges in au are not used by the tables (only ``aspect_p``,
+        ``p``, ``q``, ``gamma``).
+    damping_kind : {"none", "viscous", "efold"}
+    x_range : (float, float)
+        Range of ``x = r/r_p`` the exterior tables cover.
+    sheet : SheetSolution, optional
+        Default ``kinkfit.wake.linear.get_sheet_solution()``.
+
+    Returns
+    -------
+    EmulatorTables
+    """
+    from .damping import DAMPING_LAWS
+    if damping_kind not in DAMPING_LAWS or damping_kind not in ("none", "viscous", "efold"):
+        raise PhysicsRangeError(f"damping {damping_kind!r} has no emulator table "
+                                "(expected none, viscous or efold)", key="damping",
+                                value=damping_kind)
+    if sheet is None:
+        from .linear import get_sheet_solution
+        sheet = get_sheet_solution()
+    a, p, q, gam = disk.aspect_p, disk.p, disk.q, disk.gamma
+    x_lo, x_hi = float(x_range[0]), float(x_range[1])
+    xm = float(default_match_h(a))
+    if not (0.0 < x_lo < 1.0 - xm * a and x_hi > 1.0 + xm * a):
+        raise PhysicsRangeError(f"emulator radial range {x_range!r} (r/r_p) must contain "
+                                "the matching radii", key="x_range", value=x_range)
+    digest = _sheet_digest(sheet)
+    uni = _interior_universal(sheet, digest)
+    inputs = dict(sheet=digest, version=TABLE_VERSION, a=a, p=p, q=q, gamma=gam, xm=xm,
+                  kind=damping_kind, x_lo=x_lo, x_hi=x_hi, a_max=A_MAX, n=_N_RADIAL,
+                  nodes=_N_NODES, sub=_N_SUB)
+    key = cache.cache_key("wake-emulator-disk", inputs)
+    req = ("u_out", "rate_out", "ld_out", "u_in", "rate_in", "ld_in", "res_eta", "res_u",
+           "res_v", "res_off", "meta") + tuple("e_" + k for k in ProfileTable.fields)
+    got = cache.load_arrays(key, req) if use_cache else None
+    if got is None:
+        prof_out = matching_profile(sheet, xm, a, p, q, gam)
+        k_eta = profile_wavenumber_h(prof_out.eta, prof_out.sigma)
+        got = {}
+        profiles, tmax = [], []
+        res_eta, res_u, res_v, res_off = [], [], [], [0]
+        for side, name, x_end in ((1.0, "out", x_hi), (-1.0, "in", x_lo)):
+            x_m = 1.0 + side * xm * a
+            prof = prof_out if side > 0 else matching_profile(sheet, -xm, a, p, q, gam)
+            prof = _scaled_profile(prof, a, p, q, gam)
+            # the same window as kinkfit.wake.model.wake_skeleton
+            half = min(0.9 * math.pi / a, np.max(np.abs(prof.eta)))
+            keep = np.abs(prof.eta) <= half
+            if not np.all(keep):
+                w = np.clip((half - np.abs(prof.eta[keep])) / 4.0, 0.0, 1.0)
+                w = 0.5 * (1 - np.cos(np.pi * w))
+                prof = MatchProfile(prof.x_match, prof.eta[keep], prof.chi[keep] * w,
+                                    prof.sigma[keep] * w, prof.u[keep] * w,
+                                    prof.v[keep] * w)
+            n_r, n_phi = front_normal(np.array([x_m]), a, q)
+            xq = x_m ** -q
+            res_eta.append(prof.eta)
+            res_u.append(prof.u - xq * n_r[0] * prof.sigma)
+            res_v.append(prof.v - xq * n_phi[0] * prof.sigma)
+            res_off.append(res_off[-1] + prof.eta.size)
+            u, rate, ld = _radial_grid(side, abs(x_end - 1.0), _N_RADIAL, a, p, q,
+                                       damping_kind, k_eta)
+            t_und = np.concatenate([[0.0], np.cumsum(0.5 * (rate[1:] + rate[:-1])
+                                                     * np.diff(u))])
+            got["u_" + name], got["rate_" + name], got["ld_" + name] = u, rate, ld
+            profiles.append((prof.eta, prof.chi))
+            tmax.append(A_MAX * t_und[-1] * 1.001)
+        tab = build_profile_table(profiles, tmax)
+        got.update(tab.arrays("e_"))
+        got.update(res_eta=np.concatenate(res_eta), res_u=np.concatenate(res_u),
+                   res_v=np.concatenate(res_v), res_off=np.array(res_off, dtype=np.int64),
+                   meta=np.array([a, p, q, gam, xm, k_eta, x_lo, x_hi]))
+        if use_cache:
+            cache.save_arrays(key, got)
+    # interior columns of this disk and their mass-independent factors
+    xh_all = uni["xh"]
+    sel = np.nonzero(np.abs(xh_all) <= xm + 1e-9)[0]
+    j0, j1 = int(sel[0]), int(sel[-1]) + 1
+    xh = xh_all[j0:j1]
+    xcol = 1.0 + xh * a
+    ks, ku, kv = _global_factors(xcol, a, p, q)
+    g = amplitude_factor(xcol, a, p, q)
+    n_r, n_phi = front_normal(xcol, a, q)
+    S = uni["S"][j0:j1]
+    dist = np.abs(xh)
+    lin_f = np.where(dist[:, None] > 1e-9, S / np.sqrt(np.maximum(dist, 1e-300))[:, None], 0.0)
+    burg = (dist > 1e-9) & (g > 0)
+    itab = _table_from(uni, "i_")
+    return EmulatorTables(
+        a=a, p=p, q=q, gamma=gam, xm=xm, kind=damping_kind, x_lo=x_lo, x_hi=x_hi,
+        u_out=got["u_out"], rate_out=got["rate_out"], ld_out=got["ld_out"],
+        u_in=got["u_in"], rate_in=got["rate_in"], ld_in=got["ld_in"],
+        res_eta=got["res_eta"], res_u=got["res_u"], res_v=got["res_v"],
+        res_off=got["res_off"], ext=_table_from(got, "e_"),
+        col_xh=np.ascontiguousarray(xh), col_prof=np.arange(j0, j1, dtype=np.int64),
+        col_burg=burg, col_g=g, col_wr=xcol ** -q * n_r, col_wp=xcol ** -q * n_phi,
+        lin_sig=np.ascontiguousarray(S * ks[:, None]),
+        lin_u=np.ascontiguousarray(uni["Su"][j0:j1] * ku[:, None]),
+        lin_v=np.ascontiguousarray(uni["Sv"][j0:j1] * kv[:, None]),
+        lin_f=np.ascontiguousarray(lin_f), s_grid=np.ascontiguousarray(sheet.y_h, dtype=float),
+        inn=itab)
+
+
+# --------------------------------------------------------------------------
+# compiled evaluation
+# --------------------------------------------------------------------------
+
+@njit(cache=True)
+def _grid_interp(u, u_max, n, f):  # pragma: no cover
+    """Linear interpolation on the grid ``u = u_max s^2`` (s uniform on [0, 1])."""
+    s = math.sqrt(u / u_max) * (n - 1)
+    i = int(s)
+    if i >= n - 1:
+        return f[n - 1]
+    w = (u - u_max * (i / (n - 1)) ** 2) / (u_max * ((i + 1) / (n - 1)) ** 2
+                                            - u_max * (i / (n - 1)) ** 2)
+    return f[i] + w * (f[i + 1] - f[i])
+
+
+@njit(cache=True)
+def _lin_interp(xv, xp, fp, i0, i1):  # pragma: no cover
+    """``np.interp(xv, xp[i0:i1], fp[i0:i1], left=0, right=0)``."""
+    if xv < xp[i0] or xv > xp[i1 - 1]:
+        return 0.0
+    lo = i0
+    hi = i1 - 1
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if xp[mid] <= xv:
+            lo = mid
+        else:
+            hi = mid
+    if xp[hi] == xp[lo]:
+        return fp[lo]
+    w = (xv - xp[lo]) / (xp[hi] - xp[lo])
+    return fp[lo] + w * (fp[hi] - fp[lo])
+
+
+@njit(cache=True)
+def _phase(x, q):  # pragma: no cover
+    lx = math.log(x)
+    first = math.expm1((1.0 + q) * lx) / (1.0 + q)
+    b = q - 0.5
+    if abs(b) < 1e-12:
+        second = lx
+    else:
+        second = math.expm1(b * lx) / b
+    return first - second
+
+
+@njit(cache=True)
+def _wrap(v):  # pragma: no cover
+    two_pi = 2.0 * math.pi
+    return (v + math.pi) - two_pi * math.floor((v + math.pi) / two_pi) - math.pi
+
+
+@njit(cache=True)
+def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
+            u_out, rate_out, ld_out, u_in, rate_in, ld_in,
+            res_eta, res_u, res_v, res_off,
+            ey, ec, eu, ed, es, en, et, eh, eho, esup,
+            col_xh, col_prof, col_burg, col_g, col_wr, col_wp,
+            lin_sig, lin_u, lin_v, lin_f, s_grid,
+            iy, ic, iu, idd, iss, inn, it, ih, iho, isup,
+            out_r, out_p):  # pragma: no cover
+    """Fill ``out_r, out_p`` (m, npts), km/s; returns an error code (0 = fine)."""
+    m = amp.shape[0]
+    npts = r.shape[0]
+    n = u_out.shape[0]
+    umax_out = u_out[n - 1]
+    umax_in = u_in[n - 1]
+    nc = col_xh.shape[0]
+    ns = s_grid.shape[0]
+    s0 = s_grid[0]
+    ds = (s_grid[ns - 1] - s_grid[0]) / (ns - 1)
+    dxc = (col_xh[nc - 1] - col_xh[0]) / (nc - 1)
+    t_out = np.empty(n)
+    t_in = np.empty(n)
+    tau_c = np.empty(nc)
+    d_c = np.empty(nc)
+    g_c = np.zeros(nc, dtype=np.int64)
+    c2 = 0.5 * (gam + 1.0)
+    for w in range(m):
+        A = amp[w]
+        bet = beta[w]
+        # damped clocks t' = ∫ D dt on the radial grids (exact for any damping value)
+        t_out[0] = 0.0
+        t_in[0] = 0.0
+        prev_o = rate_out[0] * math.exp(bet * ld_out[0])
+        prev_i = rate_in[0] * math.exp(bet * ld_in[0])
+        for k in range(1, n):
+            cur_o = rate_out[k] * math.exp(bet * ld_out[k])
+            cur_i = rate_in[k] * math.exp(bet * ld_in[k])
+            t_out[k] = t_out[k - 1] + 0.5 * (cur_o + prev_o) * (u_out[k] - u_out[k - 1])
+            t_in[k] = t_in[k - 1] + 0.5 * (cur_i + prev_i) * (u_in[k] - u_in[k - 1])
+            prev_o = cur_o
+            prev_i = cur_i
+        um = xm * a
+        dm_out = math.exp(bet * _grid_interp(um, umax_out, n, ld_out))
+        dm_in = math.exp(bet * _grid_interp(um, umax_in, n, ld_in))
+        for j in range(nc):
+            uj = abs(col_xh[j]) * a
+            if col_xh[j] > 0:
+                tau_c[j] = c2 * A * _grid_interp(uj, umax_out, n, t_out)
+                d_c[j] = math.exp(bet * _grid_interp(uj, umax_out, n, ld_out))
+            else:
+                tau_c[j] = c2 * A * _grid_interp(uj, umax_in, n, t_in)
+                d_c[j] = math.exp(bet * _grid_interp(uj, umax_in, n, ld_in))
+            g_c[j] = 0
+            if col_burg[j] and tau_c[j] > 1e-12:
+                g_c[j] = _node_of(col_prof[j], tau_c[j], inn, it)
+                if g_c[j] < 0:
+                    return 1
+        for i in range(npts):
+            out_r[w, i] = 0.0
+            out_p[w, i] = 0.0
+            if not inside[i] or A == 0.0:
+                continue
+            x = r[i] / rp[w]
+            xh = (x - 1.0) / a
+            sg = 1.0 if x > 1.0 else (-1.0 if x < 1.0 else 0.0)
+            phw = phi_p[w] - sg * _phase(x, q) / a
+            dphi = _wrap(phi[i] - phw)
+            if abs(xh) <= xm:
+                # interior: bilinear on (column, s) of the steepened sheet
+                if xh < col_xh[0] or xh > col_xh[nc - 1]:
+                    continue
+                sh = dphi / a
+                if sh < s0 or sh > s_grid[ns - 1]:
+                    continue
+                jf = (xh - col_xh[0]) / dxc
+                j = int(jf)
+                if j > nc - 2:
+                    j = nc - 2
+                wx = (xh - col_xh[j]) / (col_xh[j + 1] - col_xh[j])
+                kf = (sh - s0) / ds
+                k = int(kf)
+                if k > ns - 2:
+                    k = ns - 2
+                ws = (sh - s_grid[k]) / (s_grid[k + 1] - s_grid[k])
+                ur = 0.0
+                up = 0.0
+                for dj in range(2):
+                    jj = j + dj
+                    wj = wx if dj == 1 else 1.0 - wx
+                    if wj == 0.0:
+                        continue
+                    # the two s nodes, in increasing eta (eta = -s on the inner side)
+                    ch0 = 0.0
+                    ch1 = 0.0
+                    if col_burg[jj] and tau_c[jj] > 1e-12:
+                        pj = col_prof[jj]
+                        if col_xh[jj] > 0:
+                            v0, hint = _eval_at(pj, s_grid[k], tau_c[jj], g_c[jj], -1, iy, ic,
+                                                iu, idd, iss, ih, iho, isup)
+                            v1, hint = _eval_at(pj, s_grid[k + 1], tau_c[jj], g_c[jj], hint,
+                                                iy, ic, iu, idd, iss, ih, iho, isup)
+                        else:
+                            v1, hint = _eval_at(pj, -s_grid[k + 1], tau_c[jj], g_c[jj], -1,
+                                                iy, ic, iu, idd, iss, ih, iho, isup)
+                            v0, hint = _eval_at(pj, -s_grid[k], tau_c[jj], g_c[jj], hint, iy,
+                                                ic, iu, idd, iss, ih, iho, isup)
+                        ch0 = col_g[jj] * (v0 - lin_f[jj, k])
+                        ch1 = col_g[jj] * (v1 - lin_f[jj, k + 1])
+                    w0 = wj * (1.0 - ws) * d_c[jj]
+                    w1 = wj * ws * d_c[jj]
+                    ur += w0 * (lin_u[jj, k] + col_wr[jj] * ch0) \
+                        + w1 * (lin_u[jj, k + 1] + col_wr[jj] * ch1)
+                    up += w0 * (lin_v[jj, k] + col_wp[jj] * ch0) \
+                        + w1 * (lin_v[jj, k + 1] + col_wp[jj] * ch1)
+                out_r[w, i] = A * cp[w] * ur
+                out_p[w, i] = A * cp[w] * up
+                continue
+            uu = abs(x - 1.0)
+            if xh > 0:
+                if uu > umax_out:
+                    return 2
+                tt = _grid_interp(uu, umax_out, n, t_out)
+                dd = math.exp(bet * _grid_interp(uu, umax_out, n, ld_out))
+                prof = 0
+                dmatch = dm_out
+            else:
+                if uu > umax_in:
+                    return 2
+                tt = _grid_interp(uu, umax_in, n, t_in)
+                dd = math.exp(bet * _grid_interp(uu, umax_in, n, ld_in))
+                prof = 1
+                dmatch = dm_in
+            eta = sg * dphi / a
+            chi = 0.0
+            if tt > 0.0:
+                ge = _node_of(prof, A * tt, en, et)
+                if ge < 0:
+                    return 1
+                chi = _eval_at(prof, eta, A * tt, ge, -1, ey, ec, eu, ed, es, eh, eho, esup)[0]
+            g = math.sqrt((2.0 / 3.0) * abs(x ** -1.5 - 1.0) * x ** (p + 3 * q - 1) / a)
+            sigma = 2.0 * g * dd * A * chi / (gam + 1.0)
+            mach = x ** (1.0 + q) * abs(x ** -1.5 - 1.0) / a
+            norm = math.sqrt(1.0 + mach * mach)
+            xq = x ** -q
+            dist = abs(x - 1.0) / a
+            wt = (dist - xm) / xm
+            if wt < 0.0:
+                wt = 0.0
+            if wt > 1.0:
+                wt = 1.0
+            res_w = A * dmatch * 0.5 * (1.0 + math.cos(math.pi * wt))
+            i0 = res_off[prof]
+            i1 = res_off[prof + 1]
+            rr = 0.0
+            rv = 0.0
+            if res_w != 0.0:
+                rr = _lin_interp(eta, res_eta, res_u, i0, i1)
+                rv = _lin_interp(eta, res_eta, res_v, i0, i1)
+            out_r[w, i] = cp[w] * (xq * sg * mach / norm * sigma + res_w * rr)
+            out_p[w, i] = cp[w] * (xq * sg / norm * sigma + res_w * rv)
+    return 0
+
+
+class EmulatorModel:
+    """Fast wake model with the :class:`DirectModel` interface (picklable, plain arrays).
+
+    Parameters
+    ----------
+    disk : WakeDisk
+        Disk (``aspect_p`` must equal every ``params["aspect_ratio"]``).
+    damping : {"none", "viscous", "efold"}
+    x_range : (float, float)
+        ``r/r_p`` range of the tables.
+    """
+
+    def __init__(self, disk: WakeDisk, damping: str, *, x_range=X_RANGE, tables=None):
+        self.disk = disk
+        self.damping = damping
+        self.tables = tables if tables is not None else build_tables(disk, damping,
+                                                                      x_range=x_range)
+
+    def _walker_arrays(self, params, m):
+        disk = self.disk
+        mass = np.asarray(params["mass"], dtype=float).reshape(m)
+        rp = np.asarray(params["radius"], dtype=float).reshape(m)
+        az = np.radians(np.asarray(params["azimuth"], dtype=float).reshape(m))
+        if "aspect_ratio" in params:
+            asp = np.asarray(params["aspect_ratio"], dtype=float).reshape(m)
+            if np.any(np.abs(asp - disk.aspect_p) > 1e-12 * disk.aspect_p):
+                raise KinkfitError(
+                    f"the wake emulator is tabulated for aspect_ratio = {disk.aspect_p:g}; "
+                    "fix aspect_ratio or use the direct model", key="aspect_ratio",
+                    value=float(asp[np.argmax(np.abs(asp - disk.aspect_p))]))
+        bad = ~(np.isfinite(mass) & (mass >= 0))
+        if np.any(bad):
+            raise PhysicsRangeError(f"planet mass {mass[bad][0]!r} M_jup must be >= 0",
+                                    key="mass", value=float(mass[bad][0]))
+        bad = ~((rp >= disk.r_in_au) & (rp <= disk.r_out_au))
+        if np.any(bad):
+            raise PhysicsRangeError(f"planet radius {rp[bad][0]!r} au outside the disk "
+                                    f"[{disk.r_in_au}, {disk.r_out_au}] au", key="radius",
+                                    value=float(rp[bad][0]))
+        if not np.all(np.isfinite(az)):
+            raise PhysicsRangeError("planet azimuth must be finite", key="azimuth",
+                                    value=float(az[~np.isfinite(az)][0]))
+        amp = mass * MJUP_PER_MSUN / (disk.aspect_p ** 3 * disk.mstar_msun)
+        if np.any(amp > A_MAX):
+            raise PhysicsRangeError(f"Mp/M_th = {amp.max():.3g} above the emulator tables "
+                                    f"({A_MAX:g})", key="mass", value=float(mass.max()))
+        if self.damping == "viscous":
+            beta = np.asarray(params["alpha"], dtype=float).reshape(m)
+            if not np.all(np.isfinite(beta) & (beta >= 0)):
+                raise PhysicsRangeError("damping alpha must be finite and >= 0", key="alpha",
+                                        value=float(beta[~(beta >= 0)][0]) if np.any(
+                                            ~(beta >= 0)) else float("nan"))
+        elif self.damping == "efold":
+            ef = np.asarray(params["efold"], dtype=float).reshape(m)
+            if not np.all(ef > 0):
+                raise PhysicsRangeError("damping efold must be > 0", key="efold",
+                                        value=float(ef[~(ef > 0)][0]))
+            beta = 1.0 / ef
+        else:
+            beta = np.zeros(m)
+        cp = disk.aspect_p * np.asarray(keplerian_speed_kms(rp, disk.mstar_msun), dtype=float)
+        return amp, rp, az, cp, np.ascontiguousarray(beta, dtype=float)
+
+    def __call__(self, params: dict, r_au, phi_rad):
+        m = len(params["mass"])
+        r = np.ascontiguousarray(np.asarray(r_au, dtype=float).ravel())
+        phi = np.ascontiguousarray(np.asarray(phi_rad, dtype=float).ravel())
+        amp, rp, az, cp, beta = self._walker_arrays(params, m)
+        d = self.disk
+        inside = np.isfinite(r) & np.isfinite(phi) & (r >= d.r_in_au) & (r <= d.r_out_au)
+        out_r = np.zeros((m, r.size))
+        out_p = np.zeros((m, r.size))
+        t = self.tables
+        e, ii = t.ext, t.inn
+        code = _kernel(r, phi, inside, amp, rp, az, cp, beta, t.a, t.q, t.p, t.gamma, t.xm,
+                       t.u_out, t.rate_out, t.ld_out, t.u_in, t.rate_in, t.ld_in,
+                       t.res_eta, t.res_u, t.res_v, t.res_off,
+                       e.y, e.chi0, e.u0, e.death, e.s_off, e.tau_nodes, e.t_off, e.h_idx,
+                       e.h_off, e.support, t.col_xh, t.col_prof, t.col_burg, t.col_g, t.col_wr,
+                       t.col_wp, t.lin_sig, t.lin_u, t.lin_v, t.lin_f, t.s_grid,
+                       ii.y, ii.chi0, ii.u0, ii.death, ii.s_off, ii.tau_nodes, ii.t_off,
+                       ii.h_idx, ii.h_off, ii.support, out_r, out_p)
+        if code == 1:
+            raise PhysicsRangeError("scaled Burgers time beyond the emulator tables "
+                                    f"(Mp/M_th up to {amp.max():.3g})", key="mass",
+                                    value=float(np.max(params["mass"])))
+        if code == 2:
+            raise PhysicsRangeError(
+                f"traced points beyond r/r_p in [{t.x_lo:g}, {t.x_hi:g}] of the emulator "
+                f"tables (planet radius {rp.min():.4g}-{rp.max():.4g} au)", key="radius",
+                value=float(rp.min()))
+        return out_r, out_p
+
+
+def make_fit_model(disk: WakeDisk, damping: str, method: str = "direct", **kwargs):
     """The wake model callable used by the likelihood.
 
     Parameters
     ----------
     disk : WakeDisk
-    damping : str
-    method : {"direct"}
+    damping : {"none", "viscous", "efold"}
+    method : {"emulator", "direct"}
+        ``emulator`` (default): tabulated, exact-in-time Burgers (fast);
+        ``direct``: :func:`kinkfit.wake.model.wake_perturbations` per walker.
+    **kwargs
+        ``x_range`` for the emulator.
     """
     if method == "direct":
         return DirectModel(disk, damping)
-    raise ValueError(f"unknown wake-model method {method!r}")
+    if method == "emulator":
+        return EmulatorModel(disk, damping, **kwargs)
+    raise PhysicsRangeError(f"unknown wake-model method {method!r} (expected emulator or "
+                            "direct)", key="method", value=method)
