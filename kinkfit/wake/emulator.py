@@ -78,10 +78,9 @@ __all__ = ["make_fit_model", "DirectModel", "EmulatorModel", "EmulatorTables",
 log = logging.getLogger(__name__)
 
 #: version of the table layout and algorithms (part of every cache key)
-TABLE_VERSION = 1
+TABLE_VERSION = 2
 _N_RADIAL = 4001     # radial grid per arm for the clocks and damping integrals
 _N_NODES = 32        # tau nodes with stored hull lists per profile
-_N_SUB = 12          # sub-steps per node interval for the death times
 _NEVER = 1e300       # death time of a sample that never leaves the hull (finite: cache check)
 
 
@@ -134,53 +133,105 @@ class DirectModel:
 # --------------------------------------------------------------------------
 
 @njit(cache=True)
-def _death_times(y, u0, nodes, nsub):  # pragma: no cover - compiled
-    """Time at which each sample leaves the lower hull of ``tau U0 + y^2/2``.
+def _collapse_time(i, left, right, y, u0, now):  # pragma: no cover
+    """Time at which sample ``i`` becomes collinear with ``left`` and ``right``.
 
-    The hull is recomputed on ``nsub`` sub-steps of every node interval; a
-    sample that leaves it is given the collinearity time with its hull
-    neighbours of the previous sub-step (clipped to the sub-step).
+    ``Psi = tau U0 + y^2/2``; the chord excess ``Psi_i - chord`` is
+    ``tau (U0_i - U0_chord) - w (1 - w) (y_r - y_l)^2 / 2`` with
+    ``w = (y_i - y_l)/(y_r - y_l)``, so the collapse is at
+    ``w (1 - w) (y_r - y_l)^2 / (2 (U0_i - U0_chord))`` (never if the
+    denominator is <= 0).  Times before ``now`` are moved to ``now``.
+    """
+    span = y[right] - y[left]
+    w = (y[i] - y[left]) / span
+    den = u0[i] - ((1.0 - w) * u0[left] + w * u0[right])
+    if den <= 0.0:
+        return _NEVER
+    t = 0.5 * w * (1.0 - w) * span * span / den
+    return t if t > now else now
+
+
+@njit(cache=True)
+def _heap_push(ht, hi, hv, size, t, i, v):  # pragma: no cover
+    k = size
+    ht[k] = t
+    hi[k] = i
+    hv[k] = v
+    while k > 0:
+        par = (k - 1) // 2
+        if ht[par] <= ht[k]:
+            break
+        ht[par], ht[k] = ht[k], ht[par]
+        hi[par], hi[k] = hi[k], hi[par]
+        hv[par], hv[k] = hv[k], hv[par]
+        k = par
+    return size + 1
+
+
+@njit(cache=True)
+def _heap_pop(ht, hi, hv, size):  # pragma: no cover
+    t, i, v = ht[0], hi[0], hv[0]
+    size -= 1
+    ht[0], hi[0], hv[0] = ht[size], hi[size], hv[size]
+    k = 0
+    while True:
+        a = 2 * k + 1
+        b = a + 1
+        m = k
+        if a < size and ht[a] < ht[m]:
+            m = a
+        if b < size and ht[b] < ht[m]:
+            m = b
+        if m == k:
+            break
+        ht[m], ht[k] = ht[k], ht[m]
+        hi[m], hi[k] = hi[k], hi[m]
+        hv[m], hv[k] = hv[k], hv[m]
+        k = m
+    return t, i, v, size
+
+
+@njit(cache=True)
+def _death_times(y, u0, t_max):  # pragma: no cover - compiled
+    """Exact time at which each sample leaves the lower hull of ``tau U0 + y^2/2``.
+
+    Kinetic hull: at ``tau = 0`` every sample is a vertex (``y^2/2`` is strictly
+    convex); as ``tau`` grows the hull only loses vertices, each when it becomes
+    collinear with its current neighbours.  Events are processed in time order
+    (binary heap, lazy invalidation); after a deletion the two neighbours get
+    new collapse times.  Samples alive at ``t_max`` get ``_NEVER``.
     """
     n = y.shape[0]
     death = np.full(n, _NEVER)
-    prev = np.arange(n)
-    alive = np.ones(n, dtype=np.bool_)
-    t_prev = 0.0
-    for k in range(1, nodes.shape[0]):
-        for s in range(1, nsub + 1):
-            t = nodes[k - 1] + (nodes[k] - nodes[k - 1]) * s / nsub
-            psi = t * u0 + 0.5 * y * y
-            hull = lower_hull(y, psi)
-            now = np.zeros(n, dtype=np.bool_)
-            for i in hull:
-                now[i] = True
-            for m in range(1, prev.shape[0] - 1):
-                i = prev[m]
-                if now[i] or not alive[i]:
-                    continue
-                left = prev[m - 1]
-                right = prev[m + 1]
-                w = (y[i] - y[left]) / (y[right] - y[left])
-                num = (1 - w) * 0.5 * y[left] ** 2 + w * 0.5 * y[right] ** 2 - 0.5 * y[i] ** 2
-                den = u0[i] - ((1 - w) * u0[left] + w * u0[right])
-                td = t
-                if den > 0:
-                    td = num / den
-                # the neighbours on the new hull give a second upper bound
-                jr = np.searchsorted(hull, i)
-                if 0 < jr < hull.shape[0]:
-                    left = hull[jr - 1]
-                    right = hull[jr]
-                    w = (y[i] - y[left]) / (y[right] - y[left])
-                    num = (1 - w) * 0.5 * y[left] ** 2 + w * 0.5 * y[right] ** 2 - 0.5 * y[i] ** 2
-                    den = u0[i] - ((1 - w) * u0[left] + w * u0[right])
-                    if den > 0 and num / den < td:
-                        td = num / den
-                death[i] = min(max(td, t_prev), t)
-            for i in range(n):
-                alive[i] = now[i]
-            prev = hull
-            t_prev = t
+    left = np.arange(-1, n - 1)
+    right = np.arange(1, n + 1)
+    ver = np.zeros(n, dtype=np.int64)
+    cap = 3 * n + 8     # n initial events + at most 2 per deletion
+    ht = np.empty(cap)
+    hi = np.empty(cap, dtype=np.int64)
+    hv = np.empty(cap, dtype=np.int64)
+    size = 0
+    for i in range(1, n - 1):
+        t = _collapse_time(i, i - 1, i + 1, y, u0, 0.0)
+        if t < _NEVER:
+            size = _heap_push(ht, hi, hv, size, t, i, 0)
+    while size > 0:
+        t, i, v, size = _heap_pop(ht, hi, hv, size)
+        if t > t_max:
+            break
+        if v != ver[i] or death[i] < _NEVER:
+            continue
+        death[i] = t
+        lft = left[i]
+        rgt = right[i]
+        right[lft] = rgt
+        left[rgt] = lft
+        for j in (lft, rgt):
+            ver[j] += 1
+            if 0 < j < n - 1 and death[j] == _NEVER:
+                tj = _collapse_time(j, left[j], right[j], y, u0, t)
+                if tj < _NEVER:
+                    size = _heap_push(ht, hi, hv, size, tj, j, ver[j])
     return death
 
 
@@ -225,7 +276,7 @@ class ProfileTable:
         return self.tau_nodes[self.t_off[1:] - 1]
 
 
-def build_profile_table(profiles, tau_max, *, n_nodes=_N_NODES, n_sub=_N_SUB):
+def build_profile_table(profiles, tau_max, *, n_nodes=_N_NODES):
     """Tables for a list of unit profiles.
 
     Parameters
@@ -259,7 +310,7 @@ def build_profile_table(profiles, tau_max, *, n_nodes=_N_NODES, n_sub=_N_SUB):
         if np.isfinite(t_sh) and t_sh < tmax:
             nodes = np.concatenate([[0.0], np.geomspace(0.999 * t_sh, tmax * 1.0001,
                                                         n_nodes - 1)])
-            death = _death_times(y, u, nodes, n_sub)
+            death = _death_times(y, u, float(nodes[-1]))
         else:
             nodes = np.array([0.0, max(tmax, 1e-300) * 1.0001])
             death = np.full(y.size, _NEVER)
@@ -496,7 +547,7 @@ def _table_from(arrays, prefix):
 
 def _interior_universal(sheet, digest):
     """Universal interior tables: sheet columns |X| <= 7 h_p resampled on ``s``."""
-    inputs = dict(sheet=digest, version=TABLE_VERSION, nodes=_N_NODES, sub=_N_SUB,
+    inputs = dict(sheet=digest, version=TABLE_VERSION, nodes=_N_NODES,
                   tau=_TAU_INT, x_max=7.0)
     key = cache.cache_key("wake-emulator-interior", inputs)
     req = ("xh", "S", "Su", "Sv") + tuple("i_" + k for k in ProfileTable.fields)
@@ -593,8 +644,7 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
     digest = _sheet_digest(sheet)
     uni = _interior_universal(sheet, digest)
     inputs = dict(sheet=digest, version=TABLE_VERSION, a=a, p=p, q=q, gamma=gam, xm=xm,
-                  kind=damping_kind, x_lo=x_lo, x_hi=x_hi, a_max=A_MAX, n=_N_RADIAL,
-                  nodes=_N_NODES, sub=_N_SUB)
+                  x_lo=x_lo, x_hi=x_hi, a_max=A_MAX, n=_N_RADIAL, nodes=_N_NODES)
     key = cache.cache_key("wake-emulator-disk", inputs)
     req = ("u_out", "rate_out", "ld_out", "u_in", "rate_in", "ld_in", "res_eta", "res_u",
            "res_v", "res_off", "meta") + tuple("e_" + k for k in ProfileTable.fields)
@@ -620,12 +670,16 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
                                     prof.v[keep] * w)
             n_r, n_phi = front_normal(np.array([x_m]), a, q)
             xq = x_m ** -q
+            step = np.diff(prof.eta)
+            if np.ptp(step) > 1e-9 * step.mean():
+                raise PhysicsRangeError("matching profile is not on a uniform eta grid",
+                                        key="sheet", value=float(np.ptp(step)))
             res_eta.append(prof.eta)
             res_u.append(prof.u - xq * n_r[0] * prof.sigma)
             res_v.append(prof.v - xq * n_phi[0] * prof.sigma)
             res_off.append(res_off[-1] + prof.eta.size)
             u, rate, ld = _radial_grid(side, abs(x_end - 1.0), _N_RADIAL, a, p, q,
-                                       damping_kind, k_eta)
+                                       "none", k_eta)
             t_und = np.concatenate([[0.0], np.cumsum(0.5 * (rate[1:] + rate[:-1])
                                                      * np.diff(u))])
             got["u_" + name], got["rate_" + name], got["ld_" + name] = u, rate, ld
@@ -638,6 +692,11 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
                    meta=np.array([a, p, q, gam, xm, k_eta, x_lo, x_hi]))
         if use_cache:
             cache.save_arrays(key, got)
+    # damping: ln D per unit alpha or per unit 1/efold on the radial grids
+    k_eta = float(got["meta"][5])
+    for side, name in ((1.0, "out"), (-1.0, "in")):
+        got["ld_" + name] = _radial_grid(side, float(got["u_" + name][-1]), _N_RADIAL, a, p, q,
+                                         damping_kind, k_eta)[2]
     # interior columns of this disk and their mass-independent factors
     xh_all = uni["xh"]
     sel = np.nonzero(np.abs(xh_all) <= xm + 1e-9)[0]
@@ -842,14 +901,14 @@ def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
                 if uu > umax_out:
                     return 2
                 tt = _grid_interp(uu, umax_out, n, t_out)
-                dd = math.exp(bet * _grid_interp(uu, umax_out, n, ld_out))
+                dd = 1.0 if bet == 0.0 else math.exp(bet * _grid_interp(uu, umax_out, n, ld_out))
                 prof = 0
                 dmatch = dm_out
             else:
                 if uu > umax_in:
                     return 2
                 tt = _grid_interp(uu, umax_in, n, t_in)
-                dd = math.exp(bet * _grid_interp(uu, umax_in, n, ld_in))
+                dd = 1.0 if bet == 0.0 else math.exp(bet * _grid_interp(uu, umax_in, n, ld_in))
                 prof = 1
                 dmatch = dm_in
             eta = sg * dphi / a
@@ -859,11 +918,13 @@ def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
                 if ge < 0:
                     return 1
                 chi = _eval_at(prof, eta, A * tt, ge, -1, ey, ec, eu, ed, es, eh, eho, esup)[0]
-            g = math.sqrt((2.0 / 3.0) * abs(x ** -1.5 - 1.0) * x ** (p + 3 * q - 1) / a)
+            lx = math.log(x)
+            shear = abs(math.exp(-1.5 * lx) - 1.0)
+            g = math.sqrt((2.0 / 3.0) * shear * math.exp((p + 3 * q - 1) * lx) / a)
             sigma = 2.0 * g * dd * A * chi / (gam + 1.0)
-            mach = x ** (1.0 + q) * abs(x ** -1.5 - 1.0) / a
+            xq = math.exp(-q * lx)
+            mach = x * shear / (xq * a)
             norm = math.sqrt(1.0 + mach * mach)
-            xq = x ** -q
             dist = abs(x - 1.0) / a
             wt = (dist - xm) / xm
             if wt < 0.0:
@@ -875,9 +936,15 @@ def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
             i1 = res_off[prof + 1]
             rr = 0.0
             rv = 0.0
-            if res_w != 0.0:
-                rr = _lin_interp(eta, res_eta, res_u, i0, i1)
-                rv = _lin_interp(eta, res_eta, res_v, i0, i1)
+            if res_w != 0.0 and res_eta[i0] <= eta <= res_eta[i1 - 1]:
+                # uniform eta grid of the matching profile (checked at build)
+                fk = (eta - res_eta[i0]) / (res_eta[i0 + 1] - res_eta[i0])
+                kk = i0 + int(fk)
+                if kk > i1 - 2:
+                    kk = i1 - 2
+                wr = (eta - res_eta[kk]) / (res_eta[kk + 1] - res_eta[kk])
+                rr = res_u[kk] + wr * (res_u[kk + 1] - res_u[kk])
+                rv = res_v[kk] + wr * (res_v[kk + 1] - res_v[kk])
             out_r[w, i] = cp[w] * (xq * sg * mach / norm * sigma + res_w * rr)
             out_p[w, i] = cp[w] * (xq * sg / norm * sigma + res_w * rv)
     return 0
