@@ -79,13 +79,20 @@ def _cmd_trace(args) -> int:
         from .errors import ResultFileError
         raise ResultFileError(f"{out} exists; set output.overwrite = true or "
                               f"pass --force", file=out, key="output.overwrite")
-    ridges, fit, dev = run_trace(cfg)
+    from .trace import load_cube
+    cube = load_cube(cfg)
+    ridges, fit, dev = run_trace(cfg, cube=cube)
     path = write_trace_file(out, ridges, fit, dev, cfg=cfg, overwrite=overwrite)
     print(f"traced {len(ridges)} ridge points; rejected: "
           f"{ridges.meta.get('rejected')}")
     if fit is not None:
         print(fit.summary())
     print(f"wrote {path}")
+    if not args.no_figures:
+        from .plots.gallery import save_trace_figures
+        geom = fit.geometry if fit is not None else cfg.geometry()
+        for p in save_trace_figures(cube, ridges, geom, dev, Path(out).parent):
+            print(f"wrote {p}")
     return 0
 
 
@@ -266,6 +273,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="output HDF5 (default: <output.folder>/trace.h5)")
     p.add_argument("--force", action="store_true",
                    help="overwrite an existing file")
+    p.add_argument("--no-figures", action="store_true",
+                   help="skip the channel gallery and deviation map PNGs")
     p.set_defaults(handler=_cmd_trace)
 
     p = sub.add_parser("disk", parents=[common],

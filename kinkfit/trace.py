@@ -46,7 +46,7 @@ from scipy.spatial import cKDTree
 from .errors import ConfigError, KinkfitError
 
 __all__ = ["Ridges", "trace_ridges", "peak_along_cuts", "background_maps",
-           "position_sigma", "run_trace", "write_trace_file",
+           "position_sigma", "run_trace", "load_cube", "write_trace_file",
            "read_trace_file", "geometry_from_dict", "SURFACE_CODES",
            "FWHM_PER_SIGMA", "TRACE_FILE_NAME", "TRACE_SCHEMA_VERSION"]
 
@@ -440,7 +440,7 @@ def _window_limits(v_own, v_other, v, grid, cx, cy, ux, uy, half, fwhm,
 def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
                  max_window_beams: float = 4.0, min_window_beams: float = 0.75,
                  clearance_beams: float = 0.5, max_sigma_beams: float = 0.5,
-                 max_width_ratio: float | None = 2.0,
+                 max_width_ratio: float | None = 2.0, edge_widths: float = 1.0,
                  channels=None,
                  cuts=None) -> Ridges:
     """Trace the emission ridges of every channel along the model's gradient.
@@ -641,8 +641,9 @@ def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
             with np.errstate(divide="ignore", invalid="ignore"):
                 snr = amp / noise_k[k]
                 sig = position_sigma(noise_k[k], amp, w, tmpl, sb)
-            # the ridge must sit inside its window (peak + one ridge width)
-            edge = good & ~(np.abs(res["s"]) + w <= half)
+            # the ridge must sit inside its window (peak + edge_widths ridge
+            # widths)
+            edge = good & ~(np.abs(res["s"]) + edge_widths * w <= half)
             rejected["no_peak"] += int(np.sum(edge))
             good &= ~edge
             # final position must lie on the layer
@@ -718,6 +719,16 @@ TRACE_SCHEMA_VERSION = 1
 TRACE_FILE_NAME = "trace.h5"
 
 
+def load_cube(cfg):
+    """Read the cube of a config (``data.cube``, centre, line-free channels)."""
+    from .cube import read_cube
+    centre = None
+    if cfg.data.centre_ra_deg is not None and cfg.data.centre_dec_deg is not None:
+        centre = (cfg.data.centre_ra_deg, cfg.data.centre_dec_deg)
+    return read_cube(cfg.data.cube, centre=centre,
+                     line_free=cfg.data.line_free_channels)
+
+
 def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
     """Trace, fit the background disk and measure the deviations.
 
@@ -754,15 +765,10 @@ def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
     deviations : kinkfit.deviations.Deviations
         ``deviations.meta['bias']`` describes the bias correction.
     """
-    from .cube import read_cube
     from .deviations import estimate_smearing_bias, measure_deviations
     from .diskfit import trace_and_fit
     if cube is None:
-        centre = None
-        if cfg.data.centre_ra_deg is not None and cfg.data.centre_dec_deg is not None:
-            centre = (cfg.data.centre_ra_deg, cfg.data.centre_dec_deg)
-        cube = read_cube(cfg.data.cube, centre=centre,
-                         line_free=cfg.data.line_free_channels)
+        cube = load_cube(cfg)
     geom0 = cfg.geometry()
     settings = cfg.trace
     do_fit = cfg.disk.fit_background if fit_background is None else fit_background

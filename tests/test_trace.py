@@ -258,6 +258,8 @@ def test_cli_trace_and_disk(tmp_path):
     cfgp.write_text(config_text("c.fits", folder="out", debias=False))
     assert main(["trace", str(cfgp)]) == 0
     assert (tmp_path / "out" / "trace.h5").exists()
+    assert (tmp_path / "out" / "trace_gallery.png").stat().st_size > 1000
+    assert (tmp_path / "out" / "deviation_map.png").stat().st_size > 1000
     assert main(["trace", str(cfgp)]) == 2            # refuses to overwrite
     assert main(["disk", str(cfgp)]) == 0
     from astropy.table import Table

@@ -11,7 +11,7 @@ import math
 
 import numpy as np
 
-__all__ = ["channel_gallery", "deviation_map"]
+__all__ = ["channel_gallery", "deviation_map", "save_trace_figures"]
 
 _SURF_COLOURS = {0: "tab:orange", 1: "tab:cyan"}
 _SURF_LABELS = {0: "front", 1: "back"}
@@ -176,3 +176,27 @@ def deviation_map(deviations, *, planet_xy=None, fig=None, ax=None,
     ax.set_ylabel("north offset (arcsec)")
     ax.legend(loc="lower right", fontsize=8)
     return fig
+
+
+def save_trace_figures(cube, ridges, geom, deviations, folder, *, dpi=110):
+    """Write ``trace_gallery.png`` and ``deviation_map.png`` into ``folder``.
+
+    Returns
+    -------
+    list of pathlib.Path
+    """
+    from pathlib import Path
+
+    from matplotlib.figure import Figure
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    out = []
+    fig = channel_gallery(cube, ridges, geom, fig=Figure(figsize=(12, 9.4)))
+    path = folder / "trace_gallery.png"
+    fig.savefig(path, dpi=dpi)
+    out.append(path)
+    fig = deviation_map(deviations, fig=Figure(figsize=(6.0, 5.2)))
+    path = folder / "deviation_map.png"
+    fig.savefig(path, dpi=dpi)
+    out.append(path)
+    return out
