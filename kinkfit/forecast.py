@@ -699,7 +699,11 @@ def _markdown(t) -> str:
     lines = ["| " + " | ".join(heads) + " |", "|" + "---|" * len(heads)]
     for row in t:
         lines.append("| " + " | ".join(cell(row[c], c) for c in t.colnames) + " |")
-    return "\n".join(lines) + "\n"
+    note = t.meta.get("note")
+    caution = ("Kinks can also come from other processes (instabilities, winds, "
+               "warps, surface asymmetries); these forecasts assume the kink is a "
+               "planet wake of the stated damping.")
+    return "\n".join(lines) + "\n" + (f"\n{note}.\n" if note else "") + f"\n{caution}\n"
 
 
 def write_forecast_tables(res: ForecastResult, folder) -> list:
