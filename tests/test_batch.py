@@ -22,10 +22,9 @@ pytest.importorskip("dask.distributed")
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from kinkfit.batch import (STATE_NAME, BatchEntry, load_manifest,  # noqa: E402
+from kinkfit.batch import (STATE_NAME, load_manifest,  # noqa: E402
                            parse_manifest, read_state, run_batch, run_task,
-                           survey_mass_figure, survey_table,
-                           write_survey_tables)
+                           survey_mass_figure, survey_table)
 from kinkfit.errors import ConfigError, InputFileError, ResultFileError  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
