@@ -250,8 +250,9 @@ def test_cli_trace_and_disk(tmp_path):
     from synthcases import emission
     from kinkfit.synth import ObservingSetup
     geom = truth_geometry()
-    setup = ObservingSetup(npix=128, pixel_arcsec=BEAM / 3, nchan=40,
-                           channel_width_kms=0.2, beam_major_arcsec=BEAM,
+    # a small cube (the disk overfills the 3.2" field; edges are handled)
+    setup = ObservingSetup(npix=96, pixel_arcsec=BEAM / 3, nchan=28,
+                           channel_width_kms=0.25, beam_major_arcsec=BEAM,
                            beam_minor_arcsec=BEAM, peak_snr=60.0)
     write_synthetic_cube(tmp_path / "c.fits", geom, setup, emission(), seed=1)
     cfgp = tmp_path / "c.toml"
