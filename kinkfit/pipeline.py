@@ -285,9 +285,16 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
         except ImportError:  # comparison module not installed yet
             compare_results = None
         if compare_results is not None:
-            run.comparison = compare_results(
-                [run.results[n] for n in names], folder / "comparison",
-                overwrite=True)
+            try:
+                run.comparison = compare_results(
+                    [run.results[n] for n in names], folder / "comparison",
+                    overwrite=True)
+            except Exception as exc:  # noqa: BLE001 - keep the fits
+                # the fits and reports are written; a failed comparison must
+                # not hide them (it can be redone with `kinkfit compare`)
+                log.error("comparison across assumptions failed (%s: %s); "
+                          "the fit results are complete -- rerun it with "
+                          "'kinkfit compare'", type(exc).__name__, exc)
     run.seconds = time.perf_counter() - t0
     return run
 
