@@ -190,6 +190,9 @@ def main():
     bench_sampler(args.npts, args.steps)
     if not args.skip_batch:
         bench_batch(args.tasks)
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    print(f"load average (1 min) at end: {load:.2f}  (a load above the CPU "
+          f"count makes every speed-up above meaningless)")
 
 
 if __name__ == "__main__":
