@@ -35,7 +35,7 @@ def unit_table(sheet):
     return prof, em.build_profile_table([(prof.eta, prof.chi)], [3000.0])
 
 
-def _points(rng, disk, rp, phi_p, n_circ=40, n_rand=20, n_crest=40):
+def _points(rng, disk, rp, phi_p, n_circ=30, n_rand=15, n_crest=30):
     """Points on circles: random azimuths plus a band of +-15 h_p around the crest."""
     x = rng.uniform(disk.r_in_au / rp, disk.r_out_au / rp, n_circ)
     r, phi = [], []
@@ -200,8 +200,10 @@ def test_out_of_range_raises_never_nan(small_model, rng):
     with pytest.raises(PhysicsRangeError):
         model(dict(par, mass=np.array([np.nan, 1e-3])), r, phi)
     with pytest.raises(PhysicsRangeError):
-        # traced points at r / r_p > 12: beyond the radial tables
-        model(dict(par, radius=np.array([21.0, 21.0])), np.array([290.0]), np.array([0.0]))
+        # traced points at r / r_p > 60: beyond the largest radial tables
+        wide = wm.WakeDisk(mstar_msun=1.0, aspect_p=0.1, r_in_au=1.0, r_out_au=300.0)
+        em.EmulatorModel(wide, "viscous", tables=model.tables)(
+            dict(par, radius=np.array([4.0, 4.0])), np.array([290.0]), np.array([0.0]))
     with pytest.raises(KinkfitError):
         model(dict(par, aspect_ratio=np.array([0.1, 0.12])), r, phi)
     # zero mass: exactly no wake; NaN points are not in the disk
@@ -209,12 +211,23 @@ def test_out_of_range_raises_never_nan(small_model, rng):
     assert np.all(vr == 0) and np.all(vp == 0)
 
 
-def test_corrupt_cache_is_rebuilt(tmp_path, monkeypatch, rng):
+def test_tables_extend_to_far_points(small_model):
+    # points at r/r_p = 20 (beyond the default 12): tables rebuilt on demand, finite
+    disk, model = small_model
+    clone = em.EmulatorModel(disk, "viscous", tables=model.tables)
+    par = dict(mass=np.array([1e-3]), radius=np.array([20.0]), azimuth=np.array([0.0]),
+               alpha=np.array([1e-3]))
+    vr, vp = clone(par, np.array([100.0, 250.0, 290.0]), np.array([0.1, 0.2, 0.3]))
+    assert clone.tables.x_hi >= 290.0 / 20.0 and np.all(np.isfinite(vr))
+
+
+def test_corrupt_cache_is_rebuilt(rng):
     # kinkfit.cache contract: an unreadable entry is detected and rebuilt
-    monkeypatch.setenv("KINKFIT_CACHE_DIR", str(tmp_path))
+    from kinkfit.cache import cache_dir
     disk = wm.WakeDisk(mstar_msun=1.0, aspect_p=0.12, q=0.3, r_in_au=20.0, r_out_au=300.0)
+    before = set(cache_dir().glob("wake-emulator-disk-*.npz"))
     first = em.build_tables(disk, "efold")
-    entries = sorted(tmp_path.glob("wake-emulator-disk-*.npz"))
+    entries = sorted(set(cache_dir().glob("wake-emulator-disk-*.npz")) - before)
     assert len(entries) == 1
     entries[0].write_bytes(b"not an npz file")
     second = em.build_tables(disk, "efold")
@@ -227,5 +240,6 @@ def test_corrupt_cache_is_rebuilt(tmp_path, monkeypatch, rng):
 def test_make_fit_model_methods():
     disk = wm.WakeDisk(mstar_msun=1.0, aspect_p=0.1)
     assert isinstance(em.make_fit_model(disk, "none", method="direct"), em.DirectModel)
+    assert isinstance(em.make_fit_model(disk, "none"), em.EmulatorModel)    # default
     with pytest.raises(PhysicsRangeError):
         em.make_fit_model(disk, "none", method="neural")

@@ -337,7 +337,7 @@ def build_profile_table(profiles, tau_max, *, n_nodes=_N_NODES):
                         support=np.array(support, dtype=float).reshape(-1, 4))
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _node_of(p, tau, nodes, t_off):  # pragma: no cover
     """Index ``g`` of the node list live at ``tau`` (``nodes[g-1] <= tau < nodes[g]``), -1 beyond."""
     n0 = t_off[p]
@@ -367,7 +367,7 @@ def _profile_eval(p, eta, tau, y, c, u0, death, s_off, nodes, t_off, h_idx, h_of
     return _eval_at(p, eta, tau, g, -1, y, c, u0, death, s_off, h_idx, h_off, support)[0]
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
              support):  # pragma: no cover
     """Entropy solution of profile ``p`` at ``(eta, tau)`` (0 outside its support).
@@ -398,13 +398,17 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
         if y[j] + c[j] * tau <= eta:
             lo = hi
             hi = a1
-    while hi - lo > 1:
-        mid = (lo + hi) // 2
-        j = base + h_idx[mid]
+    # branch-free bisection for the last list position with y + chi0 tau <= eta
+    span = hi - lo + 1
+    while span > 1:
+        half = span >> 1
+        j = base + h_idx[lo + half]
         if y[j] + c[j] * tau <= eta:
-            lo = mid
-        else:
-            hi = mid
+            lo = lo + half
+        span -= half
+    if lo >= a1:
+        lo = a1 - 1
+    hi = lo + 1
     ia = h_idx[lo]
     # fast path: a run of four consecutive samples, all live: no shock nearby
     if lo - 1 >= a0 and lo + 2 <= a1 and h_idx[lo - 1] == ia - 1 and h_idx[lo + 1] == ia + 1 \
@@ -528,8 +532,10 @@ def profile_solution(table: ProfileTable, p: int, eta, tau):
 
 #: largest Mp/M_th the tables cover
 A_MAX = 10.0
-#: default radial range (x = r/r_p) of the exterior tables
+#: default radial range (x = r/r_p) of the exterior tables; extended on demand
+#: (rebuilt and cached) up to X_LIMITS when the traced points need it
 X_RANGE = (0.08, 12.0)
+X_LIMITS = (0.01, 60.0)
 #: interior table: tau_max(X) = _TAU_INT * |X/h_p|^(5/2)
 _TAU_INT = 15.0 * 0.6 * 1.4
 
@@ -545,13 +551,13 @@ def _table_from(arrays, prefix):
     return ProfileTable(**{k: arrays[prefix + k] for k in ProfileTable.fields})
 
 
-def _interior_universal(sheet, digest):
+def _interior_universal(sheet, digest, use_cache=True):
     """Universal interior tables: sheet columns |X| <= 7 h_p resampled on ``s``."""
     inputs = dict(sheet=digest, version=TABLE_VERSION, nodes=_N_NODES,
                   tau=_TAU_INT, x_max=7.0)
     key = cache.cache_key("wake-emulator-interior", inputs)
     req = ("xh", "S", "Su", "Sv") + tuple("i_" + k for k in ProfileTable.fields)
-    got = cache.load_arrays(key, req)
+    got = cache.load_arrays(key, req) if use_cache else None
     if got is not None and got["S"].shape[1] == sheet.y_h.size:
         return got
     cols = np.abs(sheet.x_h) <= 7.0 + 1e-9
@@ -578,7 +584,8 @@ def _interior_universal(sheet, digest):
         tmax.append(_TAU_INT * dist ** 2.5)
     tab = build_profile_table(profiles, tmax)
     out = dict(xh=xh, S=S, Su=fields[1], Sv=fields[2], **tab.arrays("i_"))
-    cache.save_arrays(key, out)
+    if use_cache:
+        cache.save_arrays(key, out)
     return out
 
 
@@ -622,6 +629,9 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
         Range of ``x = r/r_p`` the exterior tables cover.
     sheet : SheetSolution, optional
         Default ``kinkfit.wake.linear.get_sheet_solution()``.
+    use_cache : bool
+        Read and write the on-disk cache (``False``: build from scratch, e.g.
+        to time a cold build).
 
     Returns
     -------
@@ -642,7 +652,7 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
         raise PhysicsRangeError(f"emulator radial range {x_range!r} (r/r_p) must contain "
                                 "the matching radii", key="x_range", value=x_range)
     digest = _sheet_digest(sheet)
-    uni = _interior_universal(sheet, digest)
+    uni = _interior_universal(sheet, digest, use_cache)
     inputs = dict(sheet=digest, version=TABLE_VERSION, a=a, p=p, q=q, gamma=gam, xm=xm,
                   x_lo=x_lo, x_hi=x_hi, a_max=A_MAX, n=_N_RADIAL, nodes=_N_NODES)
     key = cache.cache_key("wake-emulator-disk", inputs)
@@ -730,7 +740,7 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
 # compiled evaluation
 # --------------------------------------------------------------------------
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _grid_interp(u, u_max, n, f):  # pragma: no cover
     """Linear interpolation on the grid ``u = u_max s^2`` (s uniform on [0, 1])."""
     s = math.sqrt(u / u_max) * (n - 1)
@@ -761,7 +771,7 @@ def _lin_interp(xv, xp, fp, i0, i1):  # pragma: no cover
     return fp[lo] + w * (fp[hi] - fp[lo])
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _phase(x, q):  # pragma: no cover
     lx = math.log(x)
     first = math.expm1((1.0 + q) * lx) / (1.0 + q)
@@ -773,7 +783,7 @@ def _phase(x, q):  # pragma: no cover
     return first - second
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _wrap(v):  # pragma: no cover
     two_pi = 2.0 * math.pi
     return (v + math.pi) - two_pi * math.floor((v + math.pi) / two_pi) - math.pi
@@ -968,6 +978,26 @@ class EmulatorModel:
         self.tables = tables if tables is not None else build_tables(disk, damping,
                                                                       x_range=x_range)
 
+    def _cover(self, r, inside, rp):
+        """Extend the radial tables (rebuild, cached) if the points need it."""
+        if not np.any(inside):
+            return
+        t = self.tables
+        x_min = float(np.min(r[inside])) / float(np.max(rp))
+        x_max = float(np.max(r[inside])) / float(np.min(rp))
+        if x_min >= t.x_lo and x_max <= t.x_hi:
+            return
+        if x_min < X_LIMITS[0] or x_max > X_LIMITS[1]:
+            raise PhysicsRangeError(
+                f"traced points at r/r_p in [{x_min:.3g}, {x_max:.3g}] beyond the emulator "
+                f"limits {X_LIMITS} (planet radius {np.min(rp):.4g}-{np.max(rp):.4g} au)",
+                key="radius", value=float(np.min(rp)))
+        lo = min(t.x_lo, max(x_min / 1.5, X_LIMITS[0]))
+        hi = max(t.x_hi, min(x_max * 1.5, X_LIMITS[1]))
+        if (lo, hi) != (t.x_lo, t.x_hi):
+            log.info("wake emulator: radial tables extended to r/r_p in [%.3g, %.3g]", lo, hi)
+            self.tables = build_tables(self.disk, self.damping, x_range=(lo, hi))
+
     def _walker_arrays(self, params, m):
         disk = self.disk
         mass = np.asarray(params["mass"], dtype=float).reshape(m)
@@ -1020,6 +1050,7 @@ class EmulatorModel:
         amp, rp, az, cp, beta = self._walker_arrays(params, m)
         d = self.disk
         inside = np.isfinite(r) & np.isfinite(phi) & (r >= d.r_in_au) & (r <= d.r_out_au)
+        self._cover(r, inside, rp)
         out_r = np.zeros((m, r.size))
         out_p = np.zeros((m, r.size))
         t = self.tables
@@ -1044,7 +1075,7 @@ class EmulatorModel:
         return out_r, out_p
 
 
-def make_fit_model(disk: WakeDisk, damping: str, method: str = "direct", **kwargs):
+def make_fit_model(disk: WakeDisk, damping: str, method: str = "emulator", **kwargs):
     """The wake model callable used by the likelihood.
 
     Parameters
