@@ -206,14 +206,16 @@ def psis_log_weights(log_ratios, *, r_eff: float = 1.0):
         order = np.argsort(lr, kind="stable")
         tail_idx = order[s - m:]
         cutoff = lr[order[s - m - 1]]
-        exceed = np.exp(lr[tail_idx]) - math.exp(cutoff)
+        # same exp for both terms, clipped: tied draws (rejected emcee
+        # moves repeat a sample) must give exceedances of exactly 0
+        exceed = np.maximum(np.exp(lr[tail_idx]) - np.exp(cutoff), 0.0)
         if np.max(exceed) <= 0:  # flat tail: nothing to smooth
             k = 0.0
         else:
             k, sigma = fit_generalized_pareto(exceed)
             if np.isfinite(k):
                 p = (np.arange(1, m + 1) - 0.5) / m
-                smooth = np.log(math.exp(cutoff) + _gpd_quantile(p, k, sigma))
+                smooth = np.log(np.exp(cutoff) + _gpd_quantile(p, k, sigma))
                 lr[tail_idx] = np.minimum(smooth, 0.0)  # truncate at max raw
     return lr - logsumexp(lr), k
 
@@ -377,7 +379,8 @@ def _shared_prior(result, name):
         spec = json.loads(result.prior_specs[result.param_names.index(name)])
         return json.dumps(spec, sort_keys=True)
     if name in result.fixed:
-        return json.dumps({"kind": "fixed", "value": float(result.fixed[name])})
+        return json.dumps({"kind": "fixed",
+                           "value": float(result.fixed[name])})
     return None
 
 
@@ -500,11 +503,10 @@ def comparison_table(names, results, stats, loos, waics, diffs,
     for j, p in enumerate(params):
         unit = u.Unit(units[j]) if units[j] else None
         med = stats["median"][:, j]
-        t[f"{p}_median"] = med * unit if unit is not None else med
-        t[f"{p}_err_minus"] = ((med - stats["p16"][:, j]) * unit
-                               if unit is not None else med - stats["p16"][:, j])
-        t[f"{p}_err_plus"] = ((stats["p84"][:, j] - med) * unit
-                              if unit is not None else stats["p84"][:, j] - med)
+        scale = unit if unit is not None else 1.0
+        t[f"{p}_median"] = med * scale
+        t[f"{p}_err_minus"] = (med - stats["p16"][:, j]) * scale
+        t[f"{p}_err_plus"] = (stats["p84"][:, j] - med) * scale
         t[f"{p}_shift"] = stats["shift"][:, j]
         t[f"{p}_shift"].description = (
             f"(median - median_ref) / sqrt(sd^2 + sd_ref^2), sd = (p84 - "
@@ -914,7 +916,9 @@ def compare_results(paths: Sequence, folder, *, reference: str | None = None,
         _markdown(table, params, mismatches), encoding="utf-8")
     if figures:
         from .plots.compare import elpd_figure, overlay_corner_figure
-        planets = [(n, r) for n, r in zip(names, results) if not r.is_baseline]
+        planets = [(n, r) for n, r in zip(names, results)
+                   if not r.is_baseline
+                   and all(q in r.param_names for q in params)]
         if planets and params:
             fig = overlay_corner_figure([r for _, r in planets],
                                         [n for n, _ in planets], params=params)

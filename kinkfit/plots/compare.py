@@ -128,7 +128,8 @@ def elpd_figure(table, pareto_k: dict, fig=None):
     ax1.axvline(0.0, color="0.5", lw=0.8, ls="--")
     ax1.set_yticks(y, names)
     ax1.invert_yaxis()
-    ax1.set_xlabel(r"$\Delta\,\mathrm{elpd_{LOO}}$ to best [nats] ($\pm 2$ SE)")
+    ax1.set_xlabel(r"$\Delta\,\mathrm{elpd_{LOO}}$ to best [nats] "
+                   r"($\pm 2$ SE)")
     for i, name in enumerate(names):
         k = np.asarray(pareto_k[name], dtype=float)
         ax2.plot(np.arange(k.size), k, ".", ms=3, color=f"C{i % 10}",
