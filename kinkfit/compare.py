@@ -132,48 +132,100 @@ def fit_generalized_pareto(x, *, weak_prior: bool = True):
     Parameters
     ----------
     x : array_like, shape (n,)
-        Positive exceedances over the threshold.
+        Non-negative exceedances over the threshold.
     weak_prior : bool
         Shrink ``k`` towards 0.5 as ``(n k + 10 * 0.5) / (n + 10)``
         (VGG17 sec. 3, used for PSIS; switch off to estimate a shape).
 
     Returns
     -------
-    k, sigma : float
+    k, sigma : float (``0, 0`` when every exceedance is 0)
     """
     x = np.sort(np.asarray(x, dtype=float).ravel())
-    n = x.size
-    if n < 5 or not np.all(np.isfinite(x)) or x[0] < 0:
+    if x.size < 5 or not np.all(np.isfinite(x)) or x[0] < 0:
         raise ValueError("need at least 5 finite non-negative exceedances")
-    if x[-1] <= 0:
-        return 0.0, 0.0
+    k, sigma = _gpd_fit_columns(x[:, None], weak_prior=weak_prior)
+    return float(k[0]), float(sigma[0])
+
+
+def _gpd_fit_columns(x, *, weak_prior: bool = True, block: int = 256):
+    """ZS09 fit of every column of ``x (n, ncol)``, sorted ascending, >= 0.
+
+    Returns ``k, sigma`` of shape ``(ncol,)``; columns whose exceedances
+    are all 0 get ``k = sigma = 0``.
+    """
+    n, ncol = x.shape
     m = 20 + int(math.floor(math.sqrt(n)))
-    j = np.arange(1, m + 1)
-    x_q = x[max(int(math.floor(n / 4.0 + 0.5)) - 1, 0)]  # first quartile
-    if x_q <= 0:
-        x_q = x[x > 0][0]
-    theta = 1.0 / x[-1] + (1.0 - np.sqrt(m / (j - 0.5))) / (3.0 * x_q)
-    # ZS09 eq. (3): k(theta) = -mean log(1 - theta x) (their sign),
-    # profile log-likelihood l(theta) = n (log(theta / k) + k - 1)
-    k_zs = -np.mean(np.log1p(-theta[:, None] * x[None, :]), axis=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        prof = n * (np.log(theta / k_zs) + k_zs - 1.0)
-    prof = np.where(np.isfinite(prof), prof, -np.inf)
-    w = np.exp(prof - logsumexp(prof))
-    theta_hat = float(np.sum(theta * w))
-    k = float(np.mean(np.log1p(-theta_hat * x)))  # scipy sign: -k_zs
-    sigma = -k / theta_hat if theta_hat != 0 else float(np.mean(x))
+    j = np.arange(1, m + 1, dtype=float)
+    grid = (1.0 - np.sqrt(m / (j - 0.5)))[:, None]          # (m, 1)
+    k_out = np.zeros(ncol)
+    s_out = np.zeros(ncol)
+    live = np.flatnonzero(x[-1] > 0)
+    for start in range(0, live.size, block):
+        cols = live[start:start + block]
+        xc = x[:, cols]                                      # (n, c)
+        x_q = xc[max(int(math.floor(n / 4.0 + 0.5)) - 1, 0)]  # 1st quartile
+        if np.any(x_q <= 0):  # many exact zeros: smallest positive value
+            x_q = np.where(x_q > 0, x_q,
+                           np.min(np.where(xc > 0, xc, np.inf), axis=0))
+        theta = 1.0 / xc[-1] + grid / (3.0 * x_q)            # (m, c)
+        # ZS09 eq. (3): k(theta) = -mean log(1 - theta x) (their sign);
+        # profile log-likelihood l(theta) = n (log(theta / k) + k - 1)
+        k_zs = -np.mean(np.log1p(-theta[:, None, :] * xc[None, :, :]),
+                        axis=1)                              # (m, c)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            prof = n * (np.log(theta / k_zs) + k_zs - 1.0)
+        prof = np.where(np.isfinite(prof), prof, -np.inf)
+        w = np.exp(prof - logsumexp(prof, axis=0))
+        theta_hat = np.sum(theta * w, axis=0)                # (c,)
+        k = np.mean(np.log1p(-theta_hat[None, :] * xc), axis=0)  # scipy sign
+        with np.errstate(divide="ignore", invalid="ignore"):
+            sigma = np.where(theta_hat != 0, -k / theta_hat,
+                             np.mean(xc, axis=0))
+        k_out[cols] = k
+        s_out[cols] = sigma
     if weak_prior:
-        k = (n * k + 10 * 0.5) / (n + 10)
-    return k, float(sigma)
+        k_out[live] = (n * k_out[live] + 10 * 0.5) / (n + 10)
+    return k_out, s_out
 
 
 def _gpd_quantile(p, k, sigma):
-    """Inverse CDF of the generalized Pareto (location 0, scipy sign)."""
+    """Inverse CDF of the generalized Pareto (location 0, scipy sign).
+
+    ``p (M, 1)`` or ``(M,)``; ``k, sigma`` scalars or ``(ncol,)``.
+    """
     p = np.asarray(p, dtype=float)
-    if abs(k) < 1e-12:
-        return -sigma * np.log1p(-p)
-    return sigma * np.expm1(-k * np.log1p(-p)) / k
+    k = np.asarray(k, dtype=float)
+    small = np.abs(k) < 1e-12
+    ksafe = np.where(small, 1.0, k)
+    lp = np.log1p(-p)
+    return np.where(small, -sigma * lp, sigma * np.expm1(-ksafe * lp) / ksafe)
+
+
+def _psis_columns(log_ratios, r_eff: float = 1.0):
+    """PSIS of every column of ``log_ratios (S, n)``: (log weights, k)."""
+    lr = np.array(log_ratios, dtype=float)
+    s, n = lr.shape
+    lr -= np.max(lr, axis=0)
+    m = int(min(math.floor(0.2 * s), math.ceil(3.0 * math.sqrt(s / r_eff))))
+    k = np.full(n, np.inf)
+    if m >= 5:
+        order = np.argsort(lr, axis=0, kind="stable")
+        srt = np.take_along_axis(lr, order, axis=0)
+        cutoff = srt[s - m - 1]                              # (n,)
+        # same exp for both terms, clipped: tied draws (rejected emcee
+        # moves repeat a sample) must give exceedances of exactly 0
+        exceed = np.maximum(np.exp(srt[s - m:]) - np.exp(cutoff), 0.0)
+        k, sigma = _gpd_fit_columns(exceed)
+        smooth_cols = exceed[-1] > 0       # flat tails: nothing to smooth
+        k[~smooth_cols] = 0.0
+        if np.any(smooth_cols):
+            p = ((np.arange(1, m + 1) - 0.5) / m)[:, None]
+            q = _gpd_quantile(p, k[smooth_cols], sigma[smooth_cols])
+            smooth = np.log(np.exp(cutoff[smooth_cols]) + q)
+            srt[s - m:, smooth_cols] = np.minimum(smooth, 0.0)  # truncate
+        np.put_along_axis(lr, order, srt, axis=0)
+    return lr - logsumexp(lr, axis=0), k
 
 
 def psis_log_weights(log_ratios, *, r_eff: float = 1.0):
@@ -195,29 +247,12 @@ def psis_log_weights(log_ratios, *, r_eff: float = 1.0):
     log_weights : ndarray, shape (S,)
         Normalised (``logsumexp = 0``) smoothed log weights.
     k : float
-        Pareto shape estimate (``inf`` when the tail is too short to fit).
+        Pareto shape estimate (``inf`` when the tail is too short to fit,
+        0 when the tail is flat).
     """
-    lr = np.array(log_ratios, dtype=float)
-    s = lr.size
-    lr -= np.max(lr)
-    m = int(min(math.floor(0.2 * s), math.ceil(3.0 * math.sqrt(s / r_eff))))
-    k = float("inf")
-    if m >= 5:
-        order = np.argsort(lr, kind="stable")
-        tail_idx = order[s - m:]
-        cutoff = lr[order[s - m - 1]]
-        # same exp for both terms, clipped: tied draws (rejected emcee
-        # moves repeat a sample) must give exceedances of exactly 0
-        exceed = np.maximum(np.exp(lr[tail_idx]) - np.exp(cutoff), 0.0)
-        if np.max(exceed) <= 0:  # flat tail: nothing to smooth
-            k = 0.0
-        else:
-            k, sigma = fit_generalized_pareto(exceed)
-            if np.isfinite(k):
-                p = (np.arange(1, m + 1) - 0.5) / m
-                smooth = np.log(np.exp(cutoff) + _gpd_quantile(p, k, sigma))
-                lr[tail_idx] = np.minimum(smooth, 0.0)  # truncate at max raw
-    return lr - logsumexp(lr), k
+    lr = np.asarray(log_ratios, dtype=float).ravel()
+    lw, k = _psis_columns(lr[:, None], r_eff=r_eff)
+    return lw[:, 0], float(k[0])
 
 
 @dataclass(frozen=True)
@@ -306,9 +341,10 @@ def psis_loo(loglike, *, r_eff: float = 1.0) -> LooResult:
     s, n = ll.shape
     elpd = np.empty(n)
     kk = np.empty(n)
-    for i in range(n):
-        lw, kk[i] = psis_log_weights(-ll[:, i], r_eff=r_eff)
-        elpd[i] = logsumexp(lw + ll[:, i])
+    for start in range(0, n, 1024):  # bounded memory for many points
+        cols = slice(start, start + 1024)
+        lw, kk[cols] = _psis_columns(-ll[:, cols], r_eff=r_eff)
+        elpd[cols] = logsumexp(lw + ll[:, cols], axis=0)
     lppd = logsumexp(ll, axis=0) - math.log(s)
     return LooResult(elpd_loo=float(elpd.sum()), se_elpd_loo=_se(elpd),
                      p_loo=float(np.sum(lppd - elpd)), pointwise_elpd=elpd,
