@@ -6,7 +6,8 @@ own temporary folder is there too).  A probe cell appended to the in-memory
 copy prints the notebook's variables as JSON; the assertions read them.
 
 * ``test_walkthrough_without_fit`` runs every cell not tagged ``fit`` (cube,
-  montage, background disk, ridges, gallery, deviation map, forecast): fast.
+  montage, background disk, ridges, gallery, deviation map, forecast): fast;
+  skipped once the full run below is part of the default suite.
 * ``test_walkthrough_full`` runs the whole notebook with the sampler cell
   (tagged ``parameters``) shrunk further.  It needs the fast wake emulator:
   with the direct model every walker evaluation costs ~0.1-0.3 s and the start
@@ -134,11 +135,8 @@ def test_notebook_carries_the_caution():
         assert phrase in text, phrase
 
 
-def test_walkthrough_without_fit(tmp_path, monkeypatch):
-    nb = _load()
-    nb.cells = [c for c in nb.cells if "fit" not in _tags(c)]
-    nb.cells.append(nbformat.v4.new_code_cell(PROBE_BASE + PROBE_PRINT))
-    probe, tmp_dir = _execute(nb, tmp_path, monkeypatch)
+def _check_base(probe, tmp_dir):
+    """Assertions on the cells before the fit (cube, trace, forecast)."""
     assert probe["nchan"] == 36                 # configs/demo.toml [synth] nchan
     assert probe["n_traced"] > 0
     assert probe["n_deviations"] == probe["n_traced"]
@@ -157,12 +155,16 @@ def test_walkthrough_without_fit(tmp_path, monkeypatch):
         assert m == m and 0.3 <= m <= 3.0
 
 
-#: slow while the direct wake model is the default (see the module docstring)
-_slow_unless_emulator = (pytest.mark.usefixtures() if _emulator_is_default()
-                         else pytest.mark.slow)
+@pytest.mark.skipif(_emulator_is_default(),
+                    reason="test_walkthrough_full runs these cells too")
+def test_walkthrough_without_fit(tmp_path, monkeypatch):
+    nb = _load()
+    nb.cells = [c for c in nb.cells if "fit" not in _tags(c)]
+    nb.cells.append(nbformat.v4.new_code_cell(PROBE_BASE + PROBE_PRINT))
+    probe, tmp_dir = _execute(nb, tmp_path, monkeypatch)
+    _check_base(probe, tmp_dir)
 
 
-@_slow_unless_emulator
 def test_walkthrough_full(tmp_path, monkeypatch):
     nb = _load()
     for c in nb.cells:
@@ -171,7 +173,7 @@ def test_walkthrough_full(tmp_path, monkeypatch):
     nb.cells.append(nbformat.v4.new_code_cell(PROBE_BASE + PROBE_FIT
                                               + PROBE_PRINT))
     probe, tmp_dir = _execute(nb, tmp_path, monkeypatch)
-    assert probe["n_traced"] > 0
+    _check_base(probe, tmp_dir)
     # the summary table has the planet parameters with their units
     # (kinkfit.params canonical units: Mjup, au, deg)
     names = probe["summary_names"]
@@ -198,6 +200,15 @@ def test_walkthrough_full(tmp_path, monkeypatch):
     for name in ("trace.h5", "fit_viscous.h5", "fit_none.h5",
                  "fit_baseline.h5", "viscous", "baseline"):
         assert name in probe["output_files"], name
+    # kinkfit.compare is part of the package: the comparison must be there
+    assert probe["comparison"] is not None
+    assert Path(probe["comparison"]).is_file()
+    assert "comparison" in probe["output_files"]
     # the baseline has the jitter only (no planet parameters)
     assert probe["baseline_ndim"] == 1
     assert probe["planet_ndim"] == 5
+
+
+if not _emulator_is_default():
+    # slow while the direct wake model is the default (module docstring)
+    test_walkthrough_full = pytest.mark.slow(test_walkthrough_full)
