@@ -53,7 +53,8 @@ path                               content
                                    ``files``, ``file_sha256``, ``damping``,
                                    ``is_baseline`` (int 0/1),
                                    ``converged`` (int 0/1), ``n_free``,
-                                   ``n_loglike_samples``
+                                   ``n_loglike_samples``, ``r_eff`` (used
+                                   by PSIS)
 ``/posterior`` attrs               ``parameters`` (shared names), ``units``
 ``/posterior/<stat>``              (n_assumptions, n_shared) for ``median``,
                                    ``p16``, ``p84``, ``sd``, ``shift``; NaN
@@ -91,7 +92,8 @@ from .errors import ConfigError, ResultFileError
 
 __all__ = ["COMPARISON_SCHEMA", "SHARED_PARAMETERS", "LooResult",
            "WaicResult", "fit_generalized_pareto", "psis_log_weights",
-           "psis_loo", "waic", "elpd_differences", "traced_sha256",
+           "psis_loo", "relative_efficiency", "waic", "elpd_differences",
+           "traced_sha256",
            "check_compatible", "posterior_shifts", "comparison_table",
            "compare_results", "read_comparison", "CAUTION_TEXT"]
 
@@ -320,6 +322,26 @@ def _check_loglike(loglike, where="loglike"):
 def _se(values):
     n = values.size
     return float(math.sqrt(n * np.var(values, ddof=1))) if n > 1 else 0.0
+
+
+def relative_efficiency(result) -> float:
+    """Relative efficiency of a result's stored log-likelihood draws.
+
+    ``min(1, ESS / k)`` with ``ESS = nwalkers (n_steps - burn) / max(tau)``
+    (emcee's effective sample size of the kept chain) and ``k`` the number
+    of rows of ``pointwise_loglike``: 1 when the evenly spaced subset is
+    sparser than the independent draws the chain holds.  Falls back to 1
+    when tau or the chain shape is not known.
+    """
+    k = int(np.shape(result.pointwise_loglike)[0])
+    tau = np.asarray(result.tau, dtype=float)
+    chain = np.shape(result.chain)
+    if k == 0 or tau.size == 0 or not np.all(np.isfinite(tau)) or \
+            len(chain) != 3 or np.max(tau) <= 0:
+        return 1.0
+    kept = max(int(result.n_steps) - int(result.burn), 0)
+    ess = chain[1] * kept / float(np.max(tau))
+    return float(min(1.0, max(ess / k, 1.0 / k)))
 
 
 def psis_loo(loglike, *, r_eff: float = 1.0) -> LooResult:
@@ -700,7 +722,7 @@ def _now_utc() -> str:
 
 def _write_h5(path, *, names, files, results, stats, loos, waics, diffs,
               params, units, reference, mismatches, allow_mismatch,
-              versus=None):
+              versus=None, reffs=None):
     import h5py
 
     from . import __version__
@@ -744,6 +766,8 @@ def _write_h5(path, *, names, files, results, stats, loos, waics, diffs,
                                          dtype=np.int64)
             g.attrs["n_loglike_samples"] = np.array(
                 [loos[n].n_samples for n in names], dtype=np.int64)
+            g.attrs["r_eff"] = np.array(
+                [(reffs or {}).get(n, np.nan) for n in names], dtype=float)
             p = f.create_group("posterior", track_order=True)
             p.attrs["parameters"] = np.array(list(params), dtype=sdt)
             p.attrs["units"] = np.array(list(units), dtype=sdt)
@@ -822,7 +846,8 @@ def read_comparison(path) -> dict:
 
 def compare_results(paths: Sequence, folder, *, reference: str | None = None,
                     overwrite: bool = False, allow_mismatch: bool = False,
-                    r_eff: float = 1.0, figures: bool = True) -> Path:
+                    r_eff: float | None = None,
+                    figures: bool = True) -> Path:
     """Compare fits of the same traced data and write the products.
 
     Parameters
@@ -842,8 +867,9 @@ def compare_results(paths: Sequence, folder, *, reference: str | None = None,
         Compare even if cubes, traced data or shared priors differ (the
         mismatches are recorded; with different traced data the elpd
         differences are set to NaN, they would be meaningless).
-    r_eff : float
-        Relative efficiency of the stored log-likelihood draws for PSIS.
+    r_eff : float, optional
+        Relative efficiency of the stored log-likelihood draws for PSIS;
+        default per result from :func:`relative_efficiency`.
     figures : bool
         Also draw the PNG figures.
 
@@ -905,7 +931,9 @@ def compare_results(paths: Sequence, folder, *, reference: str | None = None,
     params = tuple(p for p in SHARED_PARAMETERS
                    if p in results[ref_i].param_names)
     stats = posterior_shifts(results, ref_i, params)
-    loos = {n: psis_loo(r.pointwise_loglike, r_eff=r_eff)
+    reffs = {n: (float(r_eff) if r_eff is not None
+                 else relative_efficiency(r)) for n, r in zip(names, results)}
+    loos = {n: psis_loo(r.pointwise_loglike, r_eff=reffs[n])
             for n, r in zip(names, results)}
     waics = {n: waic(r.pointwise_loglike) for n, r in zip(names, results)}
     same_points = len({traced_sha256(r) for r in results}) == 1
@@ -932,7 +960,7 @@ def compare_results(paths: Sequence, folder, *, reference: str | None = None,
               loos=loos, waics=waics, diffs=diffs, params=params,
               units=units, reference=reference_name, mismatches=mismatches,
               allow_mismatch=allow_mismatch,
-              versus=table.meta["planet_vs_baseline"])
+              versus=table.meta["planet_vs_baseline"], reffs=reffs)
     table.write(folder / "comparison.ecsv", format="ascii.ecsv",
                 overwrite=True)
     plain = table.copy()  # CSV: full precision (no display formats)

@@ -13,7 +13,7 @@ from kinkfit.cli import main
 from kinkfit.compare import (compare_results, elpd_differences,
                              fit_generalized_pareto, posterior_shifts,
                              psis_log_weights, psis_loo, read_comparison,
-                             traced_sha256, waic)
+                             relative_efficiency, traced_sha256, waic)
 from kinkfit.errors import ConfigError, ResultFileError
 from kinkfit.likelihood import KinkLikelihood
 from kinkfit.params import parameters_for
@@ -158,6 +158,20 @@ def test_elpd_differences_paired_se():
     assert np.isclose(d["b"]["elpd_diff"], -1.0)
 
 
+def test_relative_efficiency_from_tau(planet_fits):
+    res = planet_fits["none"]
+    k = res.pointwise_loglike.shape[0]
+    walkers = res.chain.shape[1]
+    kept = res.n_steps - res.burn
+    # effective sample size of an emcee chain = N / tau (Goodman & Weare
+    # 2010; Foreman-Mackey et al. 2013); r_eff = min(1, ESS / k)
+    tau = np.full(res.ndim, walkers * kept / (0.25 * k))
+    assert np.isclose(relative_efficiency(_variant(res, tau=tau)), 0.25)
+    assert relative_efficiency(_variant(res, tau=np.ones(res.ndim))) == 1.0
+    assert relative_efficiency(_variant(res, tau=np.full(res.ndim,
+                                                         np.nan))) == 1.0
+
+
 # ------------------------------------------------ synthetic FitResults ----
 WIDE_AU = 70.0
 
@@ -252,6 +266,7 @@ def test_true_assumption_ranks_first(files, tmp_path):
         j = names.index(other)
         assert loo["elpd_diff"][j] < -2 * loo["se_diff"][j]
     assert c["best"] == "none" and c["reference"] == "none"
+    assert np.all(np.asarray(c["assumptions"]["r_eff"]) == 1.0)
     assert np.all(loo["pareto_k_max"] < 0.7)
     # shift of the reference against itself is zero by definition
     np.testing.assert_array_equal(c["posterior"]["shift"][i_true], 0.0)
