@@ -123,12 +123,28 @@ def test_accuracy_against_direct_model_extended(monkeypatch):
 def test_profile_solution_equals_burgers_solver(unit_table, tau):
     # oracle: kinkfit.wake.burgers.burgers_solution (hull of the Hopf-Lax potential,
     # W74 equal-area rule); the tables must give the entropy solution at any tau,
-    # shocks included, not only at their nodes
+    # shocks included, not only at their nodes: equal to round-off
     prof, tab = unit_table
     eta = np.sort(np.random.default_rng(3).uniform(-80, 80, 6000))
     ref = burgers_solution(prof.eta, prof.chi, tau, eta)[0]
     got = em.profile_solution(tab, 0, eta, tau)
-    assert np.max(np.abs(got - ref)) <= 2e-3 * np.max(np.abs(ref))
+    assert np.max(np.abs(got - ref)) <= 1e-9 * np.max(np.abs(ref))
+
+
+def test_profile_solution_random_times_near_shocks(sheet):
+    # same oracle at 40 random times on an inner-arm profile, points packed around
+    # the shocks (where hull vertices are clipped and raw positions are not monotone)
+    from kinkfit.wake.burgers import shock_positions
+    prof = matching_profile(sheet, -3.0, 0.12, 1.0, 0.3, 1.6)
+    tab = em.build_profile_table([(prof.eta, prof.chi)], [800.0])
+    rng = np.random.default_rng(11)
+    for tau in 10 ** rng.uniform(-1, np.log10(800.0), 40):
+        shocks = shock_positions(prof.eta, prof.chi, tau)[:, 0]
+        eta = np.concatenate([rng.uniform(-60, 60, 500)]
+                             + [s + rng.uniform(-0.5, 0.5, 200) for s in shocks])
+        ref = burgers_solution(prof.eta, prof.chi, tau, eta)[0]
+        got = em.profile_solution(tab, 0, eta, tau)
+        assert np.max(np.abs(got - ref)) <= 1e-9 * np.max(np.abs(ref)), tau
 
 
 def test_mass_scaling_of_burgers(unit_table):

@@ -78,7 +78,7 @@ __all__ = ["make_fit_model", "DirectModel", "EmulatorModel", "EmulatorTables",
 log = logging.getLogger(__name__)
 
 #: version of the table layout and algorithms (part of every cache key)
-TABLE_VERSION = 2
+TABLE_VERSION = 3
 _N_RADIAL = 4001     # radial grid per arm for the clocks and damping integrals
 _N_NODES = 32        # tau nodes with stored hull lists per profile
 _NEVER = 1e300       # death time of a sample that never leaves the hull (finite: cache check)
@@ -252,7 +252,7 @@ class ProfileTable:
     h_idx : ndarray (nh,), int16 or int32
         Hull index lists (sample indices local to the profile) at every node, packed.
     support : ndarray (nprof, 4)
-        ``y_L, y_R`` (first and last non-zero sample), ``-min U0`` and
+        ``y_L, y_R`` (the zero samples just outside the non-zero ones), ``-min U0`` and
         ``U0_end - min U0``: the solution vanishes outside
         ``[y_L - sqrt(2 tau (-min U0)), y_R + sqrt(2 tau (U0_end - min U0))]``
         (Hopf-Lax: the zero state is the minimiser there).
@@ -317,7 +317,10 @@ def build_profile_table(profiles, tau_max, *, n_nodes=_N_NODES):
         base = s_off[-1]
         nz = np.nonzero(c != 0.0)[0]
         if nz.size:
-            support.append([y[nz[0]], y[nz[-1]], -min(u.min(), 0.0), u[-1] - min(u.min(), 0.0)])
+            # the piecewise-linear profile is non-zero strictly between the zero
+            # samples next to the first and last non-zero ones
+            i_l, i_r = max(nz[0] - 1, 0), min(nz[-1] + 1, y.size - 1)
+            support.append([y[i_l], y[i_r], -min(u.min(), 0.0), u[-1] - min(u.min(), 0.0)])
         else:
             support.append([0.0, 0.0, 0.0, 0.0])
         for tk in nodes:
@@ -422,11 +425,10 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
         if w < 0.0:
             w = 0.0
         return c[a] + w * (c[a + 1] - c[a]), lo
-    # window of the superset list (live at the node before tau) around the bracket
-    m0 = lo - 2 if lo - 2 > a0 else a0
-    m1 = hi + 2 if hi + 2 < a1 else a1
-    i_start = h_idx[m0]
-    i_end = h_idx[m1]
+    # stream the superset list (live at the node before tau) from a safe start:
+    # two live samples left of the bisection result with raw position <= eta (raw
+    # positions are not monotone next to shocks, where hull vertices are clipped)
+    i_start = h_idx[lo]
     b0 = h_off[g - 1]
     b1 = h_off[g] - 1
     lo2 = b0
@@ -439,13 +441,22 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
             hi2 = mid
     if h_idx[hi2] == i_start:
         lo2 = hi2
-    # stream the live samples of the window: effective node positions as in
-    # burgers.burgers_nodes (clipped at shocks, running maximum)
-    left = base + i_start
+    found = 0
+    while lo2 > b0:
+        j = base + h_idx[lo2]
+        if death[j] > tau and y[j] + c[j] * tau <= eta:
+            found += 1
+            if found == 3:
+                break
+        lo2 -= 1
+    while lo2 < b1 and death[base + h_idx[lo2]] <= tau:
+        lo2 += 1
+    # effective node positions as in burgers.burgers_nodes (clipped at shocks)
+    left = base + h_idx[lo2]
     p_left = y[left] + c[left] * tau
     q = lo2 + 1
     right = -1
-    while q <= b1 and h_idx[q] <= i_end:
+    while q <= b1:
         if death[base + h_idx[q]] > tau:
             right = base + h_idx[q]
             break
@@ -457,7 +468,7 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
     while True:
         nxt = -1
         q2 = q + 1
-        while q2 <= b1 and h_idx[q2] <= i_end:
+        while q2 <= b1:
             if death[base + h_idx[q2]] > tau:
                 nxt = base + h_idx[q2]
                 break
@@ -1051,6 +1062,10 @@ class EmulatorModel:
         d = self.disk
         inside = np.isfinite(r) & np.isfinite(phi) & (r >= d.r_in_au) & (r <= d.r_out_au)
         self._cover(r, inside, rp)
+        # points in order of radius: successive points then use the same table
+        # columns and node lists (cache locality; several times faster)
+        order = np.argsort(r, kind="stable")
+        r, phi, inside = r[order], phi[order], inside[order]
         out_r = np.zeros((m, r.size))
         out_p = np.zeros((m, r.size))
         t = self.tables
@@ -1072,7 +1087,11 @@ class EmulatorModel:
                 f"traced points beyond r/r_p in [{t.x_lo:g}, {t.x_hi:g}] of the emulator "
                 f"tables (planet radius {rp.min():.4g}-{rp.max():.4g} au)", key="radius",
                 value=float(rp.min()))
-        return out_r, out_p
+        res_r = np.empty_like(out_r)
+        res_p = np.empty_like(out_p)
+        res_r[:, order] = out_r
+        res_p[:, order] = out_p
+        return res_r, res_p
 
 
 def make_fit_model(disk: WakeDisk, damping: str, method: str = "emulator", **kwargs):
