@@ -107,7 +107,12 @@ def _execute(nb, tmp_path, monkeypatch):
                    if o.get("output_type") == "stream")
     line = [ln for ln in text.splitlines() if ln.startswith("PROBE")]
     assert line, f"probe cell printed nothing: {text!r}"
-    return json.loads(line[-1][len("PROBE"):]), tmp_dir
+    probe = json.loads(line[-1][len("PROBE"):])
+    # figures reach the reader as PNG images, whatever the backend
+    probe["png_outputs"] = sum("image/png" in o.get("data", {})
+                               for c in nb.cells if c.cell_type == "code"
+                               for o in c.outputs)
+    return probe, tmp_dir
 
 
 def test_notebook_is_stored_without_outputs():
@@ -163,6 +168,8 @@ def test_walkthrough_without_fit(tmp_path, monkeypatch):
     nb.cells.append(nbformat.v4.new_code_cell(PROBE_BASE + PROBE_PRINT))
     probe, tmp_dir = _execute(nb, tmp_path, monkeypatch)
     _check_base(probe, tmp_dir)
+    # montage, gallery, deviation map, forecast amplitudes
+    assert probe["png_outputs"] == 4
 
 
 def test_walkthrough_full(tmp_path, monkeypatch):
@@ -174,6 +181,8 @@ def test_walkthrough_full(tmp_path, monkeypatch):
                                               + PROBE_PRINT))
     probe, tmp_dir = _execute(nb, tmp_path, monkeypatch)
     _check_base(probe, tmp_dir)
+    # montage, gallery, deviation map, corner plot, forecast amplitudes
+    assert probe["png_outputs"] == 5
     # the summary table has the planet parameters with their units
     # (kinkfit.params canonical units: Mjup, au, deg)
     names = probe["summary_names"]
