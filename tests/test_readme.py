@@ -230,3 +230,15 @@ def test_inspect_synopsis_on_the_demo_cube(sandbox, capsys):
     assert main(["inspect", cube, "--json"]) == 0
     info = json.loads(capsys.readouterr().out)
     assert info["nchan"] == 36 and info["nx"] == info["ny"] == 128   # [synth] npix
+
+
+def test_every_subcommand_is_documented():
+    # the reverse direction: no command of the parser is missing from the
+    # README's commands table
+    import argparse
+    parser = build_parser()
+    sub = next(a for a in parser._actions
+               if isinstance(a, argparse._SubParsersAction))
+    table = _sections(_text())["Commands"]
+    documented = set(re.findall(r"`kinkfit +([a-z-]+)", table))
+    assert set(sub.choices) <= documented, set(sub.choices) - documented
