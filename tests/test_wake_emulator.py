@@ -131,14 +131,16 @@ def test_profile_solution_equals_burgers_solver(unit_table, tau):
     assert np.max(np.abs(got - ref)) <= 1e-9 * np.max(np.abs(ref))
 
 
-def test_profile_solution_random_times_near_shocks(sheet):
-    # same oracle at 40 random times on an inner-arm profile, points packed around
-    # the shocks (where hull vertices are clipped and raw positions are not monotone)
+@pytest.mark.parametrize("n_nodes", [4, 32])
+def test_profile_solution_random_times_near_shocks(sheet, n_nodes):
+    # same oracle at 60 random times on an inner-arm profile, points packed around
+    # the shocks (where hull vertices are clipped and raw positions are not monotone);
+    # 4 nodes: many samples die between nodes, so the live-sample streaming is exercised
     from kinkfit.wake.burgers import shock_positions
     prof = matching_profile(sheet, -3.0, 0.12, 1.0, 0.3, 1.6)
-    tab = em.build_profile_table([(prof.eta, prof.chi)], [800.0])
+    tab = em.build_profile_table([(prof.eta, prof.chi)], [800.0], n_nodes=n_nodes)
     rng = np.random.default_rng(11)
-    for tau in 10 ** rng.uniform(-1, np.log10(800.0), 40):
+    for tau in 10 ** rng.uniform(-1, np.log10(800.0), 60):
         shocks = shock_positions(prof.eta, prof.chi, tau)[:, 0]
         eta = np.concatenate([rng.uniform(-60, 60, 500)]
                              + [s + rng.uniform(-0.5, 0.5, 200) for s in shocks])
@@ -259,3 +261,20 @@ def test_make_fit_model_methods():
     assert isinstance(em.make_fit_model(disk, "none"), em.EmulatorModel)    # default
     with pytest.raises(PhysicsRangeError):
         em.make_fit_model(disk, "none", method="neural")
+
+
+def test_disk_tables_random_times_regression():
+    # exterior tables of a disk where live samples just left of a shock once broke
+    # the streaming start; oracle kinkfit.wake.burgers.burgers_solution at 150 random
+    # times on the padded table profile itself (equal to round-off)
+    disk = wm.WakeDisk(mstar_msun=0.886, aspect_p=0.07367, q=0.1824, p=1.0213, gamma=1.5935,
+                       r_in_au=30.0, r_out_au=400.0)
+    ext = em.build_tables(disk, "none").ext
+    rng = np.random.default_rng(0)
+    for prof in (0, 1):
+        s0, s1 = ext.s_off[prof], ext.s_off[prof + 1]
+        for tau in 0.03 * 10 ** rng.uniform(0, 4, 150):
+            eta = rng.uniform(-40, 40, 2000)
+            ref = burgers_solution(ext.y[s0:s1], ext.chi0[s0:s1], tau, eta)[0]
+            got = em.profile_solution(ext, prof, eta, tau)
+            assert np.max(np.abs(got - ref)) <= 1e-9 * np.max(np.abs(ref)), (prof, tau)

@@ -441,12 +441,13 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
             hi2 = mid
     if h_idx[hi2] == i_start:
         lo2 = hi2
+    # (the start must also have a live left neighbour: no shock clips it from the left)
     found = 0
     while lo2 > b0:
         j = base + h_idx[lo2]
         if death[j] > tau and y[j] + c[j] * tau <= eta:
             found += 1
-            if found == 3:
+            if found >= 3 and h_idx[lo2] > 0 and death[j - 1] > tau:
                 break
         lo2 -= 1
     while lo2 < b1 and death[base + h_idx[lo2]] <= tau:
@@ -484,6 +485,8 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
         if gap:
             xs = (tau * (u0[right] - u0[left]) + 0.5 * (y[right] ** 2 - y[left] ** 2)) \
                 / (y[right] - y[left])
+            if xs < p_left:    # left end of a shock: clipped (no-op after the first pair)
+                p_left = xs
             if xs < p_left:
                 xs = p_left
             if xs > p_right:
