@@ -106,6 +106,10 @@ CONTENT = "kinkfit comparison"
 SHARED_PARAMETERS = ("mass", "radius", "azimuth")
 #: VGG17 sec. 3.1: above 0.7 the PSIS estimate is unreliable
 K_BAD = 0.7
+#: |elpd difference| below which the normal approximation of its
+#: uncertainty is poor and models are read as tied (Sivula, Magnusson,
+#: Matamoros & Vehtari 2022, from memory)
+SMALL_ELPD = 4.0
 #: PHYSICS.md sec. 8
 CAUTION_TEXT = (
     "A higher elpd for a planet model is not a detection by itself: kinks "
@@ -674,16 +678,35 @@ def _markdown(t, params, mismatches) -> str:
             f"{r['elpd_diff']:.1f} ± {r['se_diff']:.1f} | "
             f"{r['pareto_k_max']:.2f} | {r['n_k_over_0p7']} | "
             f"{r['elpd_waic']:.1f} |")
-    lines += ["", "Δelpd within about 2 SE of zero is a tie (Vehtari et al. "
-              "2017). Points with Pareto k > 0.7 make the PSIS-LOO value of "
+    lines += ["", "Δelpd within about 2 SE of zero, or smaller than 4 nats, "
+              "is a tie (Vehtari et al. 2017; Sivula et al. 2022). Points "
+              "with Pareto k > 0.7 make the PSIS-LOO value of "
               "that model unreliable; refit without them or treat the "
               "ranking as indicative.", ""]
     vs = t.meta.get("planet_vs_baseline") or {}
     if vs:
+        d, se = vs["delta_elpd"], vs["se"]
+        if abs(d) <= 2 * se or abs(d) < SMALL_ELPD:
+            verdict = ("within 2 SE of zero or below 4 nats: these traced "
+                       "points do not distinguish the planet model from no "
+                       "planet")
+        elif d > 0:
+            verdict = (f"the planet model predicts the traced points better "
+                       f"by {d / se:.1f} SE (not a detection by itself, "
+                       f"see the caution below)")
+        else:
+            verdict = (f"the planet-free baseline predicts the traced points "
+                       f"better by {-d / se:.1f} SE")
+        kbad = {r["assumption"]: int(r["n_k_over_0p7"]) for r in t
+                if r["assumption"] in (vs["planet"], vs["baseline"])}
+        if any(kbad.values()):
+            verdict += ("; unreliable: Pareto k > 0.7 at "
+                        + ", ".join(f"{n} point(s) of `{a}`"
+                                    for a, n in kbad.items() if n))
         lines += [f"Best planet fit `{vs['planet']}` against the planet-free "
-                  f"`{vs['baseline']}`: Δelpd = {vs['delta_elpd']:.1f} ± "
-                  f"{vs['se']:.1f} nats (paired over the "
-                  f"{t.meta.get('n_points', '')} traced points).", ""]
+                  f"`{vs['baseline']}`: Δelpd = {d:.1f} ± {se:.1f} nats "
+                  f"(paired over the {t.meta.get('n_points', '')} traced "
+                  f"points): {verdict}.", ""]
     else:
         lines += ["**No planet-free baseline among the compared fits**: "
                   "fit one (`wake.baseline = true`) before reading anything "
