@@ -711,6 +711,12 @@ def _markdown(t, params, mismatches) -> str:
         lines += ["**No planet-free baseline among the compared fits**: "
                   "fit one (`wake.baseline = true`) before reading anything "
                   "into the planet parameters.", ""]
+    unconverged = [r["assumption"] for r in t if not r["converged"]]
+    if unconverged:
+        lines += ["**Not converged:** " + ", ".join(f"`{n}`"
+                                                  for n in unconverged)
+                  + " (chains stopped before the autocorrelation criterion; "
+                  "their posteriors and elpd values are provisional).", ""]
     if mismatches:
         lines += ["**Compared despite mismatches (allow_mismatch):**", ""]
         lines += [f"- {m}" for m in mismatches] + [""]

@@ -335,6 +335,28 @@ def test_tables_and_markdown_caution(files, tmp_path):
                         reference="nope")
 
 
+def test_cli_reference_and_unconverged_note(files, planet_fits, tmp_path,
+                                            capsys):
+    slow = write_result(tmp_path / "fit_efold.h5",
+                        _variant(planet_fits["efold"], converged=False))
+    out = tmp_path / "c"
+    assert main(["compare", str(files["none"]), str(slow),
+                 str(files["baseline"]), "-o", str(out),
+                 "--reference", "efold"]) == 0
+    printed = capsys.readouterr().out
+    assert "comparison.h5" in printed and "comparison_corner.png" in printed
+    c = read_comparison(out / "comparison.h5")
+    assert c["reference"] == "efold"
+    np.testing.assert_array_equal(c["posterior"]["shift"][1], 0.0)
+    md = (out / "comparison.md").read_text()
+    assert "**Not converged:** `efold`" in md
+    # an existing comparison is kept unless --force
+    assert main(["compare", str(files["none"]), str(slow), "-o",
+                 str(out)]) == 2
+    assert main(["compare", str(files["none"]), str(slow), "-o", str(out),
+                 "--force"]) == 0
+
+
 # --------------------------------------------------------------- refusals --
 def _variant(res, **changes):
     return dataclasses.replace(res, **changes)
