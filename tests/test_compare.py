@@ -97,7 +97,7 @@ def test_psis_tail_tied_at_the_cutoff(rng):
 def test_psis_flags_an_influential_point(rng):
     # a single point far out in a small data set dominates the posterior:
     # leaving it out moves the posterior many sds, so the importance ratios
-    # have a heavy tail and k-hat > 0.7 (VGG17 sec. 3.1 / 4.x, influential
+    # have a heavy tail and k-hat > 0.7 (VGG17 sec. 3.1, influential
     # observations); the other points stay below it
     sigma, s0 = 1.0, 10.0
     y = np.concatenate([rng.normal(0.0, sigma, 9), [14.0]])
