@@ -925,14 +925,12 @@ def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
                 if uu > umax_out:
                     return 2
                 tt = _grid_interp(uu, umax_out, n, t_out)
-                dd = 1.0 if bet == 0.0 else math.exp(bet * _grid_interp(uu, umax_out, n, ld_out))
                 prof = 0
                 dmatch = dm_out
             else:
                 if uu > umax_in:
                     return 2
                 tt = _grid_interp(uu, umax_in, n, t_in)
-                dd = 1.0 if bet == 0.0 else math.exp(bet * _grid_interp(uu, umax_in, n, ld_in))
                 prof = 1
                 dmatch = dm_in
             eta = sg * dphi / a
@@ -942,25 +940,21 @@ def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
                 if ge < 0:
                     return 1
                 chi = _eval_at(prof, eta, A * tt, ge, -1, ey, ec, eu, ed, es, eh, eho, esup)[0]
-            lx = math.log(x)
-            shear = abs(math.exp(-1.5 * lx) - 1.0)
-            g = math.sqrt((2.0 / 3.0) * shear * math.exp((p + 3 * q - 1) * lx) / a)
-            sigma = 2.0 * g * dd * A * chi / (gam + 1.0)
-            xq = math.exp(-q * lx)
-            mach = x * shear / (xq * a)
-            norm = math.sqrt(1.0 + mach * mach)
-            dist = abs(x - 1.0) / a
+            # non-wave residual of the sheet, tapered off by 2 x_match
+            dist = uu / a
             wt = (dist - xm) / xm
             if wt < 0.0:
                 wt = 0.0
-            if wt > 1.0:
-                wt = 1.0
-            res_w = A * dmatch * 0.5 * (1.0 + math.cos(math.pi * wt))
+            res_w = 0.0
             i0 = res_off[prof]
             i1 = res_off[prof + 1]
+            if wt < 1.0 and res_eta[i0] <= eta <= res_eta[i1 - 1]:
+                res_w = A * dmatch * 0.5 * (1.0 + math.cos(math.pi * wt))
+            if chi == 0.0 and res_w == 0.0:
+                continue
             rr = 0.0
             rv = 0.0
-            if res_w != 0.0 and res_eta[i0] <= eta <= res_eta[i1 - 1]:
+            if res_w != 0.0:
                 # uniform eta grid of the matching profile (checked at build)
                 fk = (eta - res_eta[i0]) / (res_eta[i0 + 1] - res_eta[i0])
                 kk = i0 + int(fk)
@@ -969,6 +963,19 @@ def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
                 wr = (eta - res_eta[kk]) / (res_eta[kk + 1] - res_eta[kk])
                 rr = res_u[kk] + wr * (res_u[kk + 1] - res_u[kk])
                 rv = res_v[kk] + wr * (res_v[kk + 1] - res_v[kk])
+            dd = 1.0
+            if bet != 0.0:
+                if prof == 0:
+                    dd = math.exp(bet * _grid_interp(uu, umax_out, n, ld_out))
+                else:
+                    dd = math.exp(bet * _grid_interp(uu, umax_in, n, ld_in))
+            lx = math.log(x)
+            shear = abs(math.exp(-1.5 * lx) - 1.0)
+            g = math.sqrt((2.0 / 3.0) * shear * math.exp((p + 3 * q - 1) * lx) / a)
+            sigma = 2.0 * g * dd * A * chi / (gam + 1.0)
+            xq = math.exp(-q * lx)
+            mach = x * shear / (xq * a)
+            norm = math.sqrt(1.0 + mach * mach)
             out_r[w, i] = cp[w] * (xq * sg * mach / norm * sigma + res_w * rr)
             out_p[w, i] = cp[w] * (xq * sg / norm * sigma + res_w * rv)
     return 0
