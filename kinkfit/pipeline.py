@@ -187,7 +187,9 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
         done = read_checkpoint(checkpoint)[2]  # ResultFileError if corrupt
         status = f"resumed from checkpoint at step {done}"
     else:
-        start = find_start(like.log_prob, pset, rng)
+        # many cheap prior draws (one vectorised call of the emulator), the
+        # best few polished: the wake posterior is multimodal in azimuth
+        start = find_start(like.log_prob, pset, rng, n_tries=4096, n_polish=6)
     outcome = run_sampler(like.log_prob, pset, settings, checkpoint,
                           initial=start, rng_seed=settings.seed,
                           resume=resume and not force)

@@ -240,12 +240,14 @@ def _convergence_text(result) -> str:
     tau_max = np.nanmax(tau) if np.any(np.isfinite(tau)) else float("nan")
     lines = [
         f"- Converged: **{'yes' if result.converged else 'NO'}** "
-        f"(criterion: steps > {mult:g} τ_max and τ changed by less than "
+        f"(criterion: steps after the first third > {mult:g} τ_max, τ "
+        f"measured on those steps, and τ changed by less than "
         f"{100 * tol:g}% between checks).",
         (f"- {result.n_steps} steps × {nw} walkers; integrated "
          f"autocorrelation time τ = "
          + ", ".join(f"{n}: {t:.1f}" for n, t in zip(result.param_names, tau))
-         + f" steps; N/τ_max = {result.n_steps / tau_max:.1f}.")
+         + f" steps (on the last two thirds of the chain); N/τ_max = "
+         f"{(result.n_steps - result.n_steps // 3) / tau_max:.1f}.")
         if np.isfinite(tau_max) else
         (f"- {result.n_steps} steps × {nw} walkers; the autocorrelation time "
          f"could not be estimated (chain too short)."),

@@ -294,7 +294,8 @@ def _tau(chain: np.ndarray) -> np.ndarray:
 
 def _burn_thin(tau, n_steps):
     if np.all(np.isfinite(tau)) and n_steps > 0:
-        burn = int(np.ceil(3 * np.max(tau)))
+        # at least the third that the convergence test discarded
+        burn = max(n_steps // 3, int(np.ceil(3 * np.max(tau))))
         thin = max(1, int(np.min(tau) / 2))
     else:
         burn, thin = n_steps // 2, 1
@@ -600,8 +601,11 @@ def run_sampler(log_prob: Callable, param_set: ParameterSet, settings,
         taus: dict[int, np.ndarray] = {}
 
         def tau_at(k):
+            # tau of the last two thirds of the first k steps: the first
+            # third is discarded as burn-in, so walkers still travelling
+            # from the start ball do not inflate tau for ever
             if k not in taus:
-                taus[k] = _tau(backend.get_chain()[:k])
+                taus[k] = _tau(backend.get_chain()[k // 3:k])
             return taus[k]
 
         history = []
@@ -613,10 +617,11 @@ def run_sampler(log_prob: Callable, param_set: ParameterSet, settings,
                 return False
             prev = tau_at(k - ce)
             change = np.max(np.abs(tau - prev) / tau)
-            ok = (k > settings.autocorr_multiple * np.max(tau)
+            kept = k - k // 3
+            ok = (kept > settings.autocorr_multiple * np.max(tau)
                   and change < settings.tau_tolerance)
             log.info("iteration %d: tau = %s, N/tau = %.1f, change %.3g%s",
-                     k, np.round(tau, 1), k / np.max(tau), change,
+                     k, np.round(tau, 1), kept / np.max(tau), change,
                      " (converged)" if ok else "")
             return bool(ok)
 
@@ -660,7 +665,7 @@ def run_sampler(log_prob: Callable, param_set: ParameterSet, settings,
     if not converged:
         log.warning("sampler stopped at %d steps without meeting the "
                     "convergence criterion (N/tau_max = %.1f, needed %.1f)",
-                    n_steps, n_steps / np.nanmax(tau) if np.any(
+                    n_steps, (n_steps - n_steps // 3) / np.nanmax(tau) if np.any(
                         np.isfinite(tau)) else np.nan,
                     settings.autocorr_multiple)
     wall = time.perf_counter() - t_start
