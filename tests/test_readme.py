@@ -229,7 +229,9 @@ def test_inspect_synopsis_on_the_demo_cube(sandbox, capsys):
     assert "nchan=36" in text            # configs/demo.toml [synth] nchan = 36
     assert main(["inspect", cube, "--json"]) == 0
     info = json.loads(capsys.readouterr().out)
-    assert info["nchan"] == 36 and info["nx"] == info["ny"] == 128   # [synth] npix
+    from kinkfit.config import load_config
+    npix = load_config("configs/demo.toml").synth.npix
+    assert info["nchan"] == 36 and info["nx"] == info["ny"] == npix   # [synth] npix
 
 
 def test_every_subcommand_is_documented():

@@ -56,13 +56,19 @@ def corner_figure(result, truths=None, fig=None, bins: int = 30):
     if fig is None:
         fig = _new_figure((2.3 * k + 0.8, 2.3 * k + 0.8))
     samples = np.asarray(result.samples)
+    tvec = _truth_vector(result, truths)
     ranges = []
     for j in range(k):  # a degenerate column would break corner's range
         lo, hi = np.min(samples[:, j]), np.max(samples[:, j])
+        if tvec is not None and tvec[j] is not None and np.isfinite(tvec[j]):
+            # a known truth outside the posterior must stay visible
+            span = max(hi - lo, 1e-12)
+            lo = min(lo, tvec[j] - 0.05 * span)
+            hi = max(hi, tvec[j] + 0.05 * span)
         pad = 1e-9 * max(abs(lo), 1.0)
         ranges.append((lo - pad, hi + pad) if hi - lo < pad else (lo, hi))
     corner.corner(samples, fig=fig, labels=list(result.param_labels),
-                  truths=_truth_vector(result, truths),
+                  truths=tvec,
                   quantiles=[0.16, 0.5, 0.84], show_titles=True,
                   title_fmt=".3g", range=ranges, bins=bins,
                   plot_datapoints=False, truth_color="C3",
