@@ -75,7 +75,6 @@ import logging
 import math
 import os
 import re
-import tempfile
 import time
 import tomllib
 from dataclasses import dataclass, field
@@ -84,6 +83,7 @@ from typing import Callable
 
 import numpy as np
 
+from .atomic import write_json_atomic
 from .errors import ConfigError, InputFileError, KinkfitError, ResultFileError
 
 __all__ = [
@@ -460,24 +460,6 @@ def run_task(entry: BatchEntry, *, resume: bool = True,
 
 
 # ----------------------------------------------------------- the state ---
-def _write_json_atomic(path: Path, obj) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".state-",
-                               suffix=".json")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(obj, fh, indent=1, sort_keys=True)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-
-
 def read_state(path) -> dict:
     """Read a batch-state file; ``{}``-like fresh state if it does not exist.
 
@@ -647,7 +629,7 @@ def run_batch(manifest, *, scheduler: str | None = None,
                          "summary": rec.get("summary") if rec else None}
         todo.append(e)
     state["updated_utc"] = _now()
-    _write_json_atomic(state_path, state)
+    write_json_atomic(state_path, state)
     log.info("batch: %d task(s) to run, %d already complete", len(todo),
              len(skipped))
 
@@ -688,7 +670,7 @@ def _run_tasks(client, todo, tasks, state, state_path, *, resume, fit_fn):
         tasks[e.name]["status"] = "submitted"
         tasks[e.name]["attempts"] += 1
         tasks[e.name]["submitted_utc"] = _now()
-    _write_json_atomic(state_path, state)
+    write_json_atomic(state_path, state)
     futures = client.map(run_task, todo, key=keys, pure=False, retries=1,
                          resume=resume, fit_fn=fit_fn, run_tag=tag)
     try:
@@ -705,7 +687,7 @@ def _run_tasks(client, todo, tasks, state, state_path, *, resume, fit_fn):
             rec["status"] = summary["status"]
             rec["summary"] = summary
             state["updated_utc"] = _now()
-            _write_json_atomic(state_path, state)
+            write_json_atomic(state_path, state)
             level = logging.INFO if summary["status"] == "done" else \
                 logging.WARNING
             log.log(level, "task %s: %s%s", entry.name, summary["status"],
@@ -715,7 +697,7 @@ def _run_tasks(client, todo, tasks, state, state_path, *, resume, fit_fn):
             if tasks[e.name]["status"] == "submitted":
                 tasks[e.name]["status"] = "interrupted"
         state["updated_utc"] = _now()
-        _write_json_atomic(state_path, state)
+        write_json_atomic(state_path, state)
         client.cancel(futures)
         raise
 

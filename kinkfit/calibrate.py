@@ -58,6 +58,7 @@ from typing import Callable
 
 import numpy as np
 
+from .atomic import write_json_atomic
 from .errors import ConfigError, KinkfitError, ResultFileError
 
 __all__ = ["Injection", "Posterior", "CalibrationRun", "draw_injections",
@@ -329,23 +330,6 @@ def bias_summary(bias) -> tuple[float, float, int]:
 
 
 # ------------------------------------------------------------------ state ---
-def _write_json_atomic(path: Path, obj) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".calib-", suffix=".json")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(obj, fh, indent=1, sort_keys=True)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-
-
 def read_calibration_state(path) -> dict:
     """Read a calibration state file (a fresh state if it does not exist)."""
     path = Path(path)
@@ -477,11 +461,11 @@ def run_calibration(cfg, *, injections: int = 100, seed: int = 0,
             run.skipped.append(inj.index)
         else:
             todo.append(inj)
-    _write_json_atomic(state_path, state)
+    write_json_atomic(state_path, state)
 
     def record(rec):
         state["injections"][str(rec["index"])] = rec
-        _write_json_atomic(state_path, state)
+        write_json_atomic(state_path, state)
         (run.ran if rec["status"] == "done" else run.failed).append(rec["index"])
 
     if workers == 1 or len(todo) <= 1:

@@ -30,8 +30,6 @@ import hashlib
 import json
 import logging
 import math
-import os
-import tempfile
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -1152,17 +1150,9 @@ def write_cube(path, data, *, velocity_kms, pixel_arcsec, rest_frequency_hz, bea
     target_dir = path.parent if str(path.parent) else Path(".")
     if not target_dir.is_dir():
         raise ResultFileError(f"{path}: directory {target_dir} does not exist", file=path)
-    fd, tmp = tempfile.mkstemp(dir=target_dir, prefix=f".{path.name}.", suffix=".tmp")
-    os.close(fd)
-    try:
+    from .atomic import atomic_path
+    with atomic_path(path) as tmp:
         hdul.writeto(tmp, overwrite=True, output_verify="exception")
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
     log.info("wrote %s (%d channels, %d x %d pixels)", path, nchan, ny, nx)
     return path
 

@@ -349,19 +349,14 @@ def _overlays(cfg, cube, ridges, geometry, deviations, results, folder):
 
 
 def _save(fig, path: Path):
-    import os
-    import tempfile
-
     import matplotlib.pyplot as plt
-    fd, tmp = tempfile.mkstemp(dir=path.parent, suffix=".png")
-    os.close(fd)
+
+    from .atomic import atomic_path
     try:
-        fig.savefig(tmp, dpi=110)
-        os.replace(tmp, path)
+        with atomic_path(path, suffix=".png") as tmp:
+            fig.savefig(tmp, dpi=110)
     finally:
         plt.close(fig)
-        if os.path.exists(tmp):
-            os.unlink(tmp)
 
 
 def _median_model_on_sky(cfg, geometry, res):

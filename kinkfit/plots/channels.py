@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import logging
 import math
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -184,17 +182,8 @@ def save_channel_montage(cube_path, output=None, ncols=6, nchan=24) -> Path:
         raise ConfigError(f"montage output directory {output.parent} does not exist",
                           key="output", value=str(output))
     fig = plot_channel_montage(cube, nchan=nchan, ncols=ncols)
-    fd, tmp = tempfile.mkstemp(dir=output.parent, prefix=f".{output.name}.",
-                               suffix=".png")
-    os.close(fd)
-    try:
+    from ..atomic import atomic_path
+    with atomic_path(output, suffix=".png") as tmp:
         fig.savefig(tmp, dpi=120, format="png")
-        os.replace(tmp, output)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
     log.info("wrote %s", output)
     return output
