@@ -528,7 +528,8 @@ def parse_config(text: str, path: str | Path | None = None) -> KinkfitConfig:
         raise ConfigError("data.line_free_channels must be a list of channel "
                           "indices", file=file, key="data.line_free_channels",
                           value=lf)
-    data = DataSettings(cube=(base / d["cube"]), distance_pc=d["distance"],
+    data = DataSettings(cube=(base / d["cube"]).resolve(),
+                        distance_pc=d["distance"],
                         centre_ra_deg=d["centre_ra"],
                         centre_dec_deg=d["centre_dec"],
                         line_free_channels=None if lf is None else tuple(lf))
@@ -588,7 +589,8 @@ def parse_config(text: str, path: str | Path | None = None) -> KinkfitConfig:
     s = _section(raw.get("sampler", {}), "sampler", file)
     sampler = SamplerSettings(**s)
     o = _section(raw.get("output", {}), "output", file)
-    output = OutputSettings(folder=base / o["folder"], overwrite=o["overwrite"])
+    output = OutputSettings(folder=(base / o["folder"]).resolve(),
+                            overwrite=o["overwrite"])
 
     synth = None
     if "synth" in raw:
