@@ -845,15 +845,9 @@ def read_comparison(path) -> dict:
     ResultFileError
         Missing, not a comparison file, or a newer schema.
     """
-    import h5py
+    from .results import open_hdf5
     path = Path(path)
-    if not path.is_file():
-        raise ResultFileError("comparison file not found", file=path)
-    try:
-        f = h5py.File(path, "r")
-    except OSError as exc:
-        raise ResultFileError(f"not a readable HDF5 file ({exc})", file=path)
-    with f:
+    with open_hdf5(path, "comparison file") as f:
         if f.attrs.get("content") != CONTENT:
             raise ResultFileError("not a kinkfit comparison file", file=path)
         if int(f.attrs["schema_version"]) > COMPARISON_SCHEMA:

@@ -84,7 +84,7 @@ import numpy as np
 
 from .errors import ResultFileError
 
-__all__ = ["SCHEMA_VERSION", "FitResult", "write_result", "read_result",
+__all__ = ["SCHEMA_VERSION", "FitResult", "write_result", "read_result", "open_hdf5",
            "assemble_result", "file_sha256", "library_versions",
            "prior_spec_json", "result_parameter_set", "likelihood_from_result"]
 
@@ -533,6 +533,29 @@ def _read(f, path) -> FitResult:
         package_version=str(f.attrs["package_version"]), versions=versions)
 
 
+def open_hdf5(path, what: str = "file"):
+    """Open an HDF5 product for reading, or raise a one-line ResultFileError.
+
+    Parameters
+    ----------
+    path : path-like
+    what : str
+        Name used in the message ("result file", "comparison file", ...).
+
+    Returns
+    -------
+    h5py.File, open read-only (use it as a context manager).
+    """
+    import h5py
+    path = Path(path)
+    if not path.is_file():
+        raise ResultFileError(f"{what} not found", file=path)
+    try:
+        return h5py.File(path, "r")
+    except OSError as exc:
+        raise ResultFileError(f"not a readable HDF5 file ({exc})", file=path)
+
+
 def read_result(path) -> FitResult:
     """Read a result file written by :func:`write_result`.
 
@@ -542,15 +565,8 @@ def read_result(path) -> FitResult:
         Missing file, not HDF5, not a kinkfit result, a newer schema, or a
         missing / damaged item (named in the message).
     """
-    import h5py
     path = Path(path)
-    if not path.is_file():
-        raise ResultFileError("result file not found", file=path)
-    try:
-        f = h5py.File(path, "r")
-    except OSError as exc:
-        raise ResultFileError(f"not a readable HDF5 file ({exc})", file=path)
-    with f:
+    with open_hdf5(path, "result file") as f:
         if f.attrs.get("content") != CONTENT or "schema_version" not in f.attrs:
             raise ResultFileError("not a kinkfit result file (no "
                                   "schema_version / content attributes)",

@@ -56,13 +56,12 @@ import numpy as np
 from .. import cache
 from ..constants import MJUP_PER_MSUN, keplerian_speed_kms
 from ..errors import KinkfitError, PhysicsRangeError
-from .burgers import lower_hull, pad_profile
+from .burgers import pad_profile
 from .damping import Damping, DampingContext, damping_log_factor
-from .locus import shear_mach_number, wake_azimuth, wrap_angle
 from .model import (Planet, WakeDisk, _global_factors, _scaled_profile, _y_ref,
-                    default_match_h, wake_perturbations)
-from .nonlinear import (MatchProfile, _dt_dx, amplitude_factor, front_normal,
-                        matching_profile, profile_wavenumber_h)
+                    default_match_h, wake_perturbations, windowed_profile)
+from .nonlinear import (_dt_dx, amplitude_factor, front_normal, matching_profile,
+                        profile_wavenumber_h)
 
 try:
     from numba import njit
@@ -682,16 +681,8 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
         for side, name, x_end in ((1.0, "out", x_hi), (-1.0, "in", x_lo)):
             x_m = 1.0 + side * xm * a
             prof = prof_out if side > 0 else matching_profile(sheet, -xm, a, p, q, gam)
-            prof = _scaled_profile(prof, a, p, q, gam)
             # the same window as kinkfit.wake.model.wake_skeleton
-            half = min(0.9 * math.pi / a, np.max(np.abs(prof.eta)))
-            keep = np.abs(prof.eta) <= half
-            if not np.all(keep):
-                w = np.clip((half - np.abs(prof.eta[keep])) / 4.0, 0.0, 1.0)
-                w = 0.5 * (1 - np.cos(np.pi * w))
-                prof = MatchProfile(prof.x_match, prof.eta[keep], prof.chi[keep] * w,
-                                    prof.sigma[keep] * w, prof.u[keep] * w,
-                                    prof.v[keep] * w)
+            prof = windowed_profile(_scaled_profile(prof, a, p, q, gam), a)
             n_r, n_phi = front_normal(np.array([x_m]), a, q)
             xq = x_m ** -q
             step = np.diff(prof.eta)

@@ -48,7 +48,7 @@ from .damping import Damping, DampingContext, damping_log_factor
 from .locus import wake_azimuth, wrap_angle
 from .nonlinear import (MatchProfile, amplitude_factor, chi_from_sigma, cross_coordinate,
                         front_normal, matching_profile, nonlinear_time,
-                        profile_wavenumber_h, sigma_from_chi)
+                        profile_wavenumber_h)
 
 __all__ = ["WakeDisk", "Planet", "Damping", "WakeSkeleton", "thermal_mass_msun",
            "mass_ratio", "wake_skeleton", "wake_perturbations",
@@ -253,6 +253,23 @@ def _scaled_profile(prof, a, p, q, gamma):
                         sig, prof.u * ku, prof.v * kv)
 
 
+def windowed_profile(prof: MatchProfile, aspect_p: float) -> MatchProfile:
+    """Window a matching profile to less than half a turn around the crest.
+
+    ``|eta| <= min(0.9 pi / a, max|eta|)`` with a raised-cosine edge 4 h_p
+    wide (``eta`` in h_p, ``a = h_p/r_p``), so the profile never overlaps its
+    own next winding.  Shared by the direct model and the emulator.
+    """
+    half = min(0.9 * math.pi / aspect_p, np.max(np.abs(prof.eta)))
+    keep = np.abs(prof.eta) <= half
+    if np.all(keep):
+        return prof
+    w = np.clip((half - np.abs(prof.eta[keep])) / 4.0, 0.0, 1.0)
+    w = 0.5 * (1 - np.cos(np.pi * w))
+    return MatchProfile(prof.x_match, prof.eta[keep], prof.chi[keep] * w,
+                        prof.sigma[keep] * w, prof.u[keep] * w, prof.v[keep] * w)
+
+
 def wake_skeleton(disk: WakeDisk, damping: Damping = Damping(), *, x_lo: float, x_hi: float,
                   x_match_h: float | None = None, sheet=None) -> WakeSkeleton:
     """Build the mass-independent tables for ``x = r/r_p`` in ``[x_lo, x_hi]``.
@@ -311,15 +328,7 @@ def wake_skeleton(disk: WakeDisk, damping: Damping = Damping(), *, x_lo: float, 
             arms[side] = None
             continue
         prof = prof_out if side > 0 else matching_profile(sheet, -xm, a, p, q, gam)
-        prof = _scaled_profile(prof, a, p, q, gam)
-        # window the profile to less than half a turn around the crest
-        half = min(0.9 * math.pi / a, np.max(np.abs(prof.eta)))
-        keep = np.abs(prof.eta) <= half
-        if not np.all(keep):
-            w = np.clip((half - np.abs(prof.eta[keep])) / 4.0, 0.0, 1.0)
-            w = 0.5 * (1 - np.cos(np.pi * w))
-            prof = MatchProfile(prof.x_match, prof.eta[keep], prof.chi[keep] * w,
-                                prof.sigma[keep] * w, prof.u[keep] * w, prof.v[keep] * w)
+        prof = windowed_profile(_scaled_profile(prof, a, p, q, gam), a)
         xs = x_m + (x_end - x_m) * np.linspace(0.0, 1.0, _N_ARM) ** 1.5
         n_r, n_phi = front_normal(xs, a, q)
         xq = xs ** -q
