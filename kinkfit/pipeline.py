@@ -182,11 +182,15 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
     rng = np.random.default_rng(settings.seed)
     start = None
     status = "new fit"
+    done = 0
     if resume and checkpoint.exists() and not force:
         from .sampling import read_checkpoint
         done = read_checkpoint(checkpoint)[2]  # ResultFileError if corrupt
+    if done > 0:
         status = f"resumed from checkpoint at step {done}"
     else:
+        # no checkpoint, or one killed before its first block of steps was
+        # written (iteration 0): start exactly as an uninterrupted run does
         # many cheap prior draws (one vectorised call of the emulator), the
         # best few polished: the wake posterior is multimodal in azimuth
         start = find_start(like.log_prob, pset, rng, n_tries=4096, n_polish=6)

@@ -73,3 +73,35 @@ def test_sigkill_at_random_points_then_resume(tmp_path):
     result = read_result(cfg.output.folder / "fit_none.h5")
     np.testing.assert_array_equal(result.chain, reference.chain)
     np.testing.assert_array_equal(result.log_prob, reference.log_prob)
+
+
+def test_checkpoint_killed_before_first_block_restarts_like_a_new_fit(tmp_path):
+    """A SIGKILL after the checkpoint file is created but before its first
+    block of steps is flushed leaves a valid checkpoint at iteration 0; the
+    next run must then start exactly as an uninterrupted run (same start
+    point search, same walker ball), not from prior draws.
+
+    Oracle: an uninterrupted run with the same seed.
+    """
+    from kinkfit.sampling import _open_backend
+
+    ref_dir = tmp_path / "ref"
+    ref_dir.mkdir()
+    cfg_ref = _config(ref_dir, steps=40)
+    synth_from_config(cfg_ref)
+    reference = read_result(run_fit(cfg_ref, progress=False).results["none"])
+
+    work = tmp_path / "empty"
+    work.mkdir()
+    cfg = _config(work, steps=40)
+    synth_from_config(cfg)
+    folder = cfg.output.folder
+    folder.mkdir(parents=True, exist_ok=True)
+    pset = cfg.parameter_set("none", with_planet=True)
+    _open_backend(folder / "fit_none.chain.h5", pset, cfg.sampler.walkers,
+                  resume=False)
+    assert read_checkpoint(folder / "fit_none.chain.h5")[2] == 0
+    run = run_fit(cfg, progress=False)
+    assert run.status["none"] == "new fit"
+    result = read_result(run.results["none"])
+    np.testing.assert_array_equal(result.chain, reference.chain)
