@@ -136,11 +136,20 @@ def test_scaling_invariance():
 
 
 def test_passive_fields_follow_characteristics():
-    # a passive copy of chi itself must reproduce chi exactly (same branch)
+    # a passive copy of chi itself must reproduce chi (same branch): exactly
+    # away from shocks; next to one chi is the Hopf-Lax fan (eta - y*)/t of its
+    # vertex while the passive keeps the vertex value, a difference below
+    # max|chi0'| d eta (one sample of the initial profile; Lax 1957 formula)
     chi0 = gauss_deriv(ETA)
     eta_out = np.linspace(-15, 15, 3001)
-    out = burgers_solution(ETA, chi0, 6.0, eta_out, passive=(2.0 * chi0,))
-    assert np.allclose(out[1], 2.0 * out[0])
+    t = 6.0
+    out = burgers_solution(ETA, chi0, t, eta_out, passive=(2.0 * chi0,))
+    xs = shock_positions(ETA, chi0, t)[:, 0]
+    assert xs.size >= 1
+    far = np.min(np.abs(eta_out[:, None] - xs[None, :]), axis=1) > 0.05
+    assert np.allclose(out[1][far], 2.0 * out[0][far])
+    bound = np.max(np.abs(np.diff(chi0) / np.diff(ETA))) * (ETA[1] - ETA[0])
+    assert np.max(np.abs(out[1] - 2.0 * out[0])) <= 2.0 * bound
 
 
 def test_scattered_times_blend_between_grid_times():
@@ -171,3 +180,33 @@ def test_zero_time_returns_initial_profile():
     assert np.array_equal(vals[0], chi0) and shocks.shape == (0, 3)
     with pytest.raises(ValueError):
         burgers_nodes(ETA[::-1], chi0, 1.0)
+
+
+def test_late_nwave_fed_by_less_than_one_sample():
+    # Regression: long after the N wave forms, each lobe is fed by the
+    # characteristics of a neighbourhood of the minimum of U0 = int chi0
+    # narrower than one sample.  The solution there is the Hopf-Lax fan
+    # chi = (eta - y*)/t (Lax 1957; W74 §2.8), amplitude sqrt(2 L / t); a
+    # constant state chi0(y*) next to the shocks (the previous code) gave
+    # ~chi0 at the vertex instead.  Oracle: brute-force minimisation of
+    # U0(y) + (eta - y)^2 / (2t) over a 50x finer copy of the same
+    # piecewise-linear profile.
+    eta0 = np.linspace(-12.0, 12.0, 97)                 # d eta = 0.25
+    chi0 = n_profile(eta0) + 0.3 * np.exp(-0.5 * ((eta0 - 1.0) / 0.7) ** 2)
+    t = 3000.0                                          # sqrt(2L/t) ~ 0.03 << chi0' d eta
+    fine = np.linspace(-400.0, 400.0, 400001)
+    cf = np.interp(fine, eta0, chi0, left=0.0, right=0.0)
+    u0 = np.concatenate([[0.0], np.cumsum(0.5 * (cf[1:] + cf[:-1]) * np.diff(fine))])
+    eta_out = np.linspace(-150.0, 150.0, 61) + 0.0123
+    brute = np.array([(e - fine[np.argmin(u0 + (e - fine) ** 2 / (2 * t))]) / t
+                      for e in eta_out])
+    got = burgers_solution(eta0, chi0, t, eta_out)[0]
+    peak = np.max(np.abs(brute))
+    assert peak > 0.01
+    assert np.max(np.abs(got - brute)) < 0.02 * peak
+    # W74: the positive lobe of area L peaks at sqrt(2 L / t)
+    lobe = np.trapezoid(np.clip(cf, 0, None), fine) - 0.0
+    big = burgers_solution(eta0, chi0, t, np.linspace(-300, 300, 60001))[0]
+    pos_area = np.trapezoid(np.clip(big, 0, None), np.linspace(-300, 300, 60001))
+    assert big.max() == pytest.approx(np.sqrt(2 * pos_area / t), rel=0.03)
+    assert pos_area > 0.1 * lobe

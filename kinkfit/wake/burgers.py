@@ -164,14 +164,26 @@ def burgers_nodes(eta0, chi0, t, passive=(), *, _u0=None):
         return pos, vals, np.zeros((0, 3))
     j0, j1 = hull[k], hull[k + 1]
     xs = (psi[j1] - psi[j0]) / (eta0[j1] - eta0[j0])
+    raw = pos.copy()
     pos[k] = np.minimum(pos[k], xs)
     pos[k + 1] = np.maximum(pos[k + 1], xs)
+    # Next to a shock the vertex y_j is the minimiser for every eta between
+    # its node and the shock, where the Hopf-Lax solution is the fan
+    # chi = (eta - y_j)/t (slope 1/t), not the constant chi0(y_j).  The
+    # difference matters late, when an N-wave lobe is fed by less than one
+    # sample interval around the minimum of U0 (amplitude sqrt(2L/t) below
+    # |chi0'| d eta).  A node clipped onto a shock takes the fan value too.
+    clipped = pos != raw
+    if np.any(clipped):
+        vals[0, clipped] = (pos[clipped] - eta0[hull][clipped]) / t
     where = np.repeat(k + 1, 2)
     pos = np.insert(pos, where, np.repeat(xs, 2))
     pairs = np.stack([vals[:, k], vals[:, k + 1]], axis=-1).reshape(vals.shape[0], -1)
+    pairs[0, 0::2] = (xs - eta0[j0]) / t
+    pairs[0, 1::2] = (xs - eta0[j1]) / t
     vals = np.insert(vals, where, pairs, axis=1)
     pos = np.maximum.accumulate(pos)
-    shocks = np.column_stack([xs, chi0[j0], chi0[j1]])
+    shocks = np.column_stack([xs, pairs[0, 0::2], pairs[0, 1::2]])
     return pos, vals, shocks
 
 
