@@ -1,0 +1,402 @@
+"""Forward model of what the ridge tracer measures when a wake is present.
+
+The first-order kink ``-dv_los / |grad V_bg|`` evaluated at a traced point
+is what an infinitely fine beam would see.  With a real beam the tracer
+measures the peak of the *beam-smeared, filtered* channel profile along its
+cut, and near a planet the wake varies on the scale of the beam: the traced
+kink is smaller than the first-order one (by ~2-3x in the demo disk) and
+displaced along the ridge.  This module predicts the traced peak itself.
+
+Model of one traced point ``i`` (channel ``k``, cut centre ``c``, unit
+direction ``u``, half window ``h``, template sigma ``t``; docs/physics/
+response.md).  The channel image is the sum of a background part and the
+change the wake makes to the front layer::
+
+    I(p) = I_0(p) + sum_q B(p - q) S_eff(q) [Phi_k(V(q) + dv(q)) - Phi_k(V(q))]
+
+with ``q`` the pixel centres of the cube's grid near the cut, ``B`` the
+beam (unit sum on the grid, as :func:`kinkfit.synth.beam_kernel`), ``V``
+the background line-of-sight velocity of the front layer, ``dv`` the wake's
+line-of-sight excess there, ``Phi_k`` the Gaussian line averaged over
+channel ``k`` (:func:`kinkfit.synth.channel_profile`) and
+``S_eff = S_front - S_back Phi_back`` (the front layer hides the back one,
+as in :func:`kinkfit.synth.make_cube`).  ``I_0`` is the noise-free model
+cube of the background disk (:func:`kinkfit.deviations.model_cube`) -- the
+same one that gives the beam-smearing bias.  Sampled along the cut and
+filtered with the tracer's Gaussian template (normalised over the window,
+as :func:`kinkfit.trace.peak_along_cuts`), ``F = K (P_0 + B' dI)``, and the
+predicted peak ``s`` is the interior local maximum nearest to the
+background model's own peak ``s_0``, refined by a parabola.  The model kink
+is ``kappa (s - s_0)``, ``kappa`` = d(first-order offset)/ds at the point,
+so that without a planet it is exactly zero and the data it is compared with
+are the debiased offsets.
+
+Everything but ``dv`` at the nodes is precomputed once per fit; an
+evaluation costs one wake-model call at the nodes, ``m * sum_i Q_i`` error
+functions and one batched product (``m`` walkers).  The wake is applied to
+the front layer only (the back layer's own kink is ignored).
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import ndimage
+from scipy.special import erf
+
+from .errors import KinkfitError
+
+__all__ = ["RidgeResponse", "build_ridge_response"]
+
+log = logging.getLogger(__name__)
+
+_FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
+_SQRT2 = math.sqrt(2.0)
+
+
+def _channel_profile(v0, s2, lo, hi, scale):
+    """``channel_profile`` with precomputed ``s2 = sqrt2 sigma`` and
+    ``scale = sqrt(pi)/2 * s2 / width`` (the same formula)."""
+    return scale * (erf((hi - v0) / s2) - erf((lo - v0) / s2))
+
+
+@dataclass
+class RidgeResponse:
+    """Precomputed tracer response of a set of traced points.
+
+    Attributes (``n`` points, ``Q`` nodes per point padded, ``M`` samples
+    per cut padded, ``u`` unique nodes)
+    ----------
+    node_r_au, node_phi_rad : ndarray, shape (u,)
+        Front-layer disk position of each unique node (pixel centre).
+    node_a_r, node_a_phi : ndarray, shape (u,)
+        Projection coefficients of the nodes (``dv_los = a_r dv_r +
+        a_phi dv_phi``).
+    node_index : ndarray of int, shape (n, Q)
+        Unique-node index of each (point, node) pair (0 in padding).
+    weight : ndarray, shape (n, M, Q)
+        Filtered beam weights times ``S_eff`` (0 in padding).
+    v_bg, s2, lo, hi, scale : ndarray, shape (n, Q)
+        Background velocity, ``sqrt2 sigma_v``, channel bounds and profile
+        scale of each pair (km/s).
+    f0 : ndarray, shape (n, M)
+        Filtered background profile along each cut.
+    s_grid : ndarray, shape (n, M)
+        Cut sample positions, arcsec (NaN in padding).
+    inner : ndarray of bool, shape (n, M)
+        Samples where a peak may be taken (away from the window edges).
+    s_ref : ndarray, shape (n,)
+        The data's peak position along each cut, arcsec: the model takes
+        its local maximum nearest to it (as the bias model does).
+    s0 : ndarray, shape (n,)
+        Background model's peak position, arcsec along the cut.
+    kappa : ndarray, shape (n,)
+        d(first-order offset)/ds at each point.
+    """
+
+    node_r_au: np.ndarray
+    node_phi_rad: np.ndarray
+    node_a_r: np.ndarray
+    node_a_phi: np.ndarray
+    node_index: np.ndarray
+    weight: np.ndarray
+    v_bg: np.ndarray
+    s2: np.ndarray
+    lo: np.ndarray
+    hi: np.ndarray
+    scale: np.ndarray
+    f0: np.ndarray
+    s_grid: np.ndarray
+    inner: np.ndarray
+    s_ref: np.ndarray
+    s0: np.ndarray
+    kappa: np.ndarray
+    meta: dict = field(default_factory=dict)
+
+    @property
+    def n_points(self) -> int:
+        return int(self.s0.size)
+
+    @property
+    def n_nodes(self) -> int:
+        return int(self.node_r_au.size)
+
+    def _phi0(self):
+        if not hasattr(self, "_phi0_cache"):
+            self._phi0_cache = _channel_profile(self.v_bg, self.s2, self.lo,
+                                                self.hi, self.scale)
+        return self._phi0_cache
+
+    def peaks(self, dv_los_nodes: np.ndarray) -> np.ndarray:
+        """Predicted peak positions along the cuts.
+
+        Parameters
+        ----------
+        dv_los_nodes : ndarray, shape (m, u)
+            Line-of-sight velocity excess of the wake at the nodes, km/s.
+
+        Returns
+        -------
+        ndarray, shape (m, n)
+            Peak positions, arcsec along each cut.
+        """
+        dv = np.atleast_2d(np.asarray(dv_los_nodes, dtype=float))
+        m = dv.shape[0]
+        out = np.empty((m, self.n_points))
+        phi0 = self._phi0()
+        for j in range(m):
+            dvp = dv[j][self.node_index]                      # (n, Q)
+            dphi = _channel_profile(self.v_bg + dvp, self.s2, self.lo,
+                                    self.hi, self.scale) - phi0
+            f = self.f0 + np.einsum("nmq,nq->nm", self.weight, dphi)
+            out[j] = _nearest_peak(f, self.s_grid, self.inner, self.s_ref)
+        return out
+
+    def offsets(self, dv_los_nodes: np.ndarray) -> np.ndarray:
+        """Model kinks ``kappa (s - s0)``, arcsec, shape (m, n)."""
+        return self.kappa[None, :] * (self.peaks(dv_los_nodes) - self.s0[None, :])
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state.pop("_phi0_cache", None)
+        return state
+
+
+def _nearest_peak(f, s_grid, inner, s_ref):
+    """Interior local maximum of each row nearest to ``s_ref``, refined.
+
+    ``f`` (n, M); rows without an interior maximum return the position of
+    their largest interior sample (a saturated kink).
+    """
+    n, mm = f.shape
+    locmax = np.zeros_like(inner)
+    locmax[:, 1:-1] = (f[:, 1:-1] >= f[:, :-2]) & (f[:, 1:-1] >= f[:, 2:])
+    cand = locmax & inner
+    with np.errstate(invalid="ignore"):
+        dist = np.where(cand, np.abs(s_grid - s_ref[:, None]), np.inf)
+    j = np.argmin(dist, axis=1)
+    none = ~np.isfinite(dist[np.arange(n), j])
+    if np.any(none):
+        fi = np.where(inner, f, -np.inf)
+        j = np.where(none, np.argmax(fi, axis=1), j)
+    j = np.clip(j, 1, mm - 2)
+    r = np.arange(n)
+    ym, y0, yp = f[r, j - 1], f[r, j], f[r, j + 1]
+    den = ym - 2.0 * y0 + yp
+    with np.errstate(divide="ignore", invalid="ignore"):
+        frac = np.where(den < 0, 0.5 * (ym - yp) / den, 0.0)
+    frac = np.clip(np.nan_to_num(frac), -1.0, 1.0)
+    step = s_grid[r, j + 1] - s_grid[r, j]
+    return s_grid[r, j] + frac * step
+
+
+def build_ridge_response(cube, ridges, geom, emission, *, background=None,
+                         reach_sigma: float = 2.5,
+                         search_beams: float = 1.5) -> RidgeResponse:
+    """Precompute the tracer response of traced points (module docstring).
+
+    Parameters
+    ----------
+    cube : kinkfit.cube.Cube
+        The data cube (pixel grid, channels, beams).
+    ridges : kinkfit.trace.Ridges
+        Traced points with their cuts (``cut_x_arcsec``, ``dir_x``,
+        ``template_arcsec``, ``half_window_arcsec``...).
+    geom : kinkfit.geometry.DiskGeometry
+        The background disk the points were measured against.
+    emission : kinkfit.synth.LineEmission
+        Emission profile of the background model (the bias model's).
+    background : kinkfit.cube.Cube, optional
+        Noise-free background model cube (default:
+        :func:`kinkfit.deviations.model_cube`).
+    reach_sigma : float
+        Nodes within this many beam sigmas (major axis) of a cut are used.
+    search_beams : float
+        The model's peak is looked for within this many beam FWHM of the
+        data's peak (a model kink beyond it saturates there).
+
+    Returns
+    -------
+    RidgeResponse
+    """
+    from .deviations import model_cube, signed_offsets
+    from .geometry import (background_velocity, projection_coefficients,
+                           sky_to_disk)
+    from .trace import _grid, _to_index
+
+    n = len(ridges)
+    if n == 0:
+        raise KinkfitError("no traced points: nothing to model")
+    if background is None:
+        background = model_cube(cube, geom, emission)
+    x, y, x0, dx, y0, dy = _grid(cube)
+    pix = float(cube.pixel_arcsec)
+    vel = np.asarray(cube.velocity_kms, float)
+    dv_ch = float(cube.channel_width_kms)
+    cx = np.asarray(ridges.cut_x_arcsec, float)
+    cy = np.asarray(ridges.cut_y_arcsec, float)
+    ux = np.asarray(ridges.dir_x, float)
+    uy = np.asarray(ridges.dir_y, float)
+    half = np.asarray(ridges.half_window_arcsec, float)
+    tmpl = np.asarray(ridges.template_arcsec, float)
+    chan = np.asarray(ridges.channel, int)
+    s_data = (ridges.x_arcsec - cx) * ux + (ridges.y_arcsec - cy) * uy
+
+    # sampling of each cut (odd count, step <= min(t/2, pix/2)); the model
+    # profile is kept at the samples within search_beams FWHM of the data's
+    # peak (padded to M)
+    step_max = np.minimum(0.5 * tmpl, 0.5 * pix)
+    ns = (2 * np.ceil(half / step_max) + 1).astype(int)
+    fwhm = np.sqrt(np.asarray(cube.beam_major_arcsec, float)[chan]
+                   * np.asarray(cube.beam_minor_arcsec, float)[chan])
+    search = search_beams * fwhm
+    steps = 2.0 * half / (ns - 1)
+    M = int(np.max(np.minimum(ns, 2 * np.ceil(search / steps) + 3)))
+    # pixel nodes near each cut
+    bmaj = np.asarray(cube.beam_major_arcsec, float)[chan]
+    bmin = np.asarray(cube.beam_minor_arcsec, float)[chan]
+    bpa = np.radians(np.asarray(cube.beam_pa_deg, float)[chan])
+    smaj = bmaj / _FWHM_PER_SIGMA
+    smin = bmin / _FWHM_PER_SIGMA
+    reach = reach_sigma * smaj + 0.5 * pix
+    node_lists = []
+    for i in range(n):
+        ends_x = cx[i] + np.array([-half[i], half[i]]) * ux[i]
+        ends_y = cy[i] + np.array([-half[i], half[i]]) * uy[i]
+        r_lo, c_lo = _to_index(np.array([ends_x.min() - reach[i]]),
+                               np.array([ends_y.min() - reach[i]]), x0, dx, y0, dy)
+        r_hi, c_hi = _to_index(np.array([ends_x.max() + reach[i]]),
+                               np.array([ends_y.max() + reach[i]]), x0, dx, y0, dy)
+        rows = np.arange(int(math.floor(min(r_lo[0], r_hi[0]))),
+                         int(math.ceil(max(r_lo[0], r_hi[0]))) + 1)
+        cols = np.arange(int(math.floor(min(c_lo[0], c_hi[0]))),
+                         int(math.ceil(max(c_lo[0], c_hi[0]))) + 1)
+        rows = rows[(rows >= 0) & (rows < y.size)]
+        cols = cols[(cols >= 0) & (cols < x.size)]
+        rr, cc = np.meshgrid(rows, cols, indexing="ij")
+        rr, cc = rr.ravel(), cc.ravel()
+        qx, qy = x[cc], y[rr]
+        # distance from the cut segment
+        t = np.clip((qx - cx[i]) * ux[i] + (qy - cy[i]) * uy[i], -half[i], half[i])
+        d = np.hypot(qx - (cx[i] + t * ux[i]), qy - (cy[i] + t * uy[i]))
+        keep = d <= reach[i]
+        node_lists.append(rr[keep] * x.size + cc[keep])
+    flat = np.unique(np.concatenate(node_lists))
+    fr, fc = flat // x.size, flat % x.size
+    fx, fy = x[fc], y[fr]
+    r_f, phi_f, _ = sky_to_disk(geom, fx, fy, "front")
+    on = np.isfinite(r_f) & (r_f <= float(emission.r_out_au))
+    v_f = background_velocity(geom, fx, fy, surface="front")
+    v_b = background_velocity(geom, fx, fy, surface="back")
+    r_b, _, _ = sky_to_disk(geom, fx, fy, "back")
+    s_front = np.where(on, emission.brightness_jy_beam(np.where(on, r_f, 1.0),
+                                                       "front"), 0.0)
+    sig_f = emission.line_sigma_kms(np.where(on, r_f, 1.0))
+    has_back = np.isfinite(r_b) & (r_b <= float(emission.r_out_au)) & \
+        (float(emission.back_ratio) > 0)
+    s_back = np.where(has_back, emission.brightness_jy_beam(
+        np.where(has_back, r_b, 1.0), "back"), 0.0)
+    sig_b = emission.line_sigma_kms(np.where(has_back, r_b, 1.0))
+    # unique nodes that are on the front layer
+    keep_u = on & np.isfinite(v_f)
+    ui = -np.ones(flat.size, dtype=int)
+    ui[keep_u] = np.arange(int(keep_u.sum()))
+    a_r, a_phi, _ = projection_coefficients(geom, phi_f[keep_u])
+    Q = max(int(np.max([np.sum(keep_u[np.searchsorted(flat, nl)])
+                        for nl in node_lists])), 1)
+
+    node_index = np.zeros((n, Q), dtype=np.int64)
+    weight = np.zeros((n, M, Q))
+    v_bg = np.zeros((n, Q))
+    s2 = np.ones((n, Q))
+    lo = np.zeros((n, Q))
+    hi = np.ones((n, Q))
+    scale = np.zeros((n, Q))
+    s_grid = np.full((n, M), np.nan)
+    inner = np.zeros((n, M), dtype=bool)
+    f0 = np.zeros((n, M))
+    img_cache = {}
+    for i in range(n):
+        pos = np.searchsorted(flat, node_lists[i])
+        pos = pos[keep_u[pos]]
+        q = pos.size
+        k = chan[i]
+        nsi = ns[i]
+        u = np.linspace(-1.0, 1.0, nsi)
+        s = half[i] * u
+        step = s[1] - s[0]
+        margin = max(2, int(math.ceil(0.5 * tmpl[i] / step)))
+        inner_full = np.zeros(nsi, dtype=bool)
+        inner_full[margin:nsi - margin] = True
+        # kept samples: a run of at most M around the data's peak
+        j0 = int(np.clip(np.searchsorted(s, s_data[i] - search[i]) - 1,
+                         0, max(nsi - M, 0)))
+        sel = np.arange(j0, min(j0 + M, nsi))
+        nk = sel.size
+        # pad beyond the kept run with the same step (never chosen)
+        s_grid[i] = s[sel[0]] + step * np.arange(M)
+        inner[i, :nk] = inner_full[sel]
+        px = cx[i] + s * ux[i]
+        py = cy[i] + s * uy[i]
+        # template filter, normalised over the window (as the tracer)
+        dd = (s[sel, None] - s[None, :]) / tmpl[i]
+        kern = np.exp(-0.5 * dd ** 2)
+        kern /= kern.sum(axis=1, keepdims=True)
+        # background profile from the model cube, sampled like the tracer
+        if k not in img_cache:
+            img_cache[k] = np.asarray(background.data[k], float)
+        rows, cols = _to_index(px, py, x0, dx, y0, dy)
+        prof = ndimage.map_coordinates(img_cache[k], [rows, cols], order=1,
+                                       mode="constant", cval=0.0,
+                                       prefilter=False)
+        f0[i, :nk] = kern @ np.nan_to_num(prof)
+        f0[i, nk:] = f0[i, nk - 1]
+        if q == 0:
+            continue
+        qx, qy = fx[pos], fy[pos]
+        # beam at (p_m - q), unit sum on the pixel grid
+        ex = px[:, None] - qx[None, :]
+        ey = py[:, None] - qy[None, :]
+        a = ex * math.sin(bpa[i]) + ey * math.cos(bpa[i])
+        b = ex * math.cos(bpa[i]) - ey * math.sin(bpa[i])
+        beam = np.exp(-0.5 * ((a / smaj[i]) ** 2 + (b / smin[i]) ** 2))
+        beam *= pix * pix / (2.0 * math.pi * smaj[i] * smin[i])
+        lo_k, hi_k = vel[k] - 0.5 * dv_ch, vel[k] + 0.5 * dv_ch
+        phib = np.where(has_back[pos], _channel_profile(
+            v_b[pos], _SQRT2 * sig_b[pos], lo_k, hi_k,
+            math.sqrt(math.pi) / 2.0 * _SQRT2 * sig_b[pos] / dv_ch), 0.0)
+        s_eff = s_front[pos] - s_back[pos] * np.nan_to_num(phib)
+        weight[i, :nk, :q] = (kern @ beam) * s_eff[None, :]
+        node_index[i, :q] = ui[pos]
+        v_bg[i, :q] = v_f[pos]
+        s2[i, :q] = _SQRT2 * sig_f[pos]
+        lo[i, :q], hi[i, :q] = lo_k, hi_k
+        scale[i, :q] = math.sqrt(math.pi) / 2.0 * s2[i, :q] / dv_ch
+    s0 = _nearest_peak(f0, np.nan_to_num(s_grid), inner, s_data)
+    # d(first-order offset)/ds at each point, by a central difference
+    eps = 0.25 * pix
+    surf = np.where(np.asarray(ridges.surface) == 1, "back", "front")
+    kappa = np.ones(n)
+    for name in ("front", "back"):
+        mk = surf == name
+        if not np.any(mk):
+            continue
+        px, py = ridges.x_arcsec[mk], ridges.y_arcsec[mk]
+        vv = ridges.velocity_kms[mk]
+        code = np.asarray(ridges.surface)[mk]
+        op, _ = signed_offsets(geom, px + eps * ux[mk], py + eps * uy[mk], vv, code)
+        om, _ = signed_offsets(geom, px - eps * ux[mk], py - eps * uy[mk], vv, code)
+        kk = (op - om) / (2.0 * eps)
+        kappa[mk] = np.where(np.isfinite(kk), kk, 1.0)
+    log.info("ridge response: %d points, %d nodes (%d per point, padded), "
+             "%d samples per cut", n, int(keep_u.sum()), Q, M)
+    return RidgeResponse(
+        node_r_au=r_f[keep_u], node_phi_rad=phi_f[keep_u], node_a_r=a_r,
+        node_a_phi=a_phi, node_index=node_index, weight=weight, v_bg=v_bg,
+        s2=s2, lo=lo, hi=hi, scale=scale, f0=f0, s_grid=np.nan_to_num(s_grid),
+        inner=inner, s_ref=s_data, s0=s0, kappa=kappa,
+        meta={"reach_sigma": reach_sigma, "n_nodes": int(keep_u.sum()),
+              "nodes_per_point_padded": Q, "samples_per_cut": M})
