@@ -370,3 +370,52 @@ def test_bad_inputs_raise_kinkfit_errors():
         L.angular_momentum_flux(sol, 5.0)
     with pytest.raises(PhysicsRangeError, match="x_h"):
         L.sheet_profile(sol, -2.5)
+
+
+# ---------------------------------------------------------------- 1-D cuts
+
+def test_cuts_reproduce_the_2d_sheet(coarse):
+    # numerical convergence (two integration paths: uniform steps on the 2-D
+    # grid, local adaptive steps for the cuts) of the same GR01 problem on the
+    # same k grid: rows agree to < 0.2 % of the wake peak
+    xs = np.array([2.0, -2.0, 4.0])
+    cuts = L.solve_cuts(xs, softening_h=0.1, period_h=coarse.y_period_h,
+                        k_max_h=coarse.k_max_h * (1 + 1e-9))
+    assert cuts.s_h[1] - cuts.s_h[0] == pytest.approx(coarse.y_h[1] - coarse.y_h[0])
+    for j, i in enumerate(_rows(coarse, xs)):
+        x = coarse.x_h[i]
+        s = coarse.y_h + 0.75 * x * abs(x)
+        got = np.interp(s, cuts.s_h, cuts.sigma[j])
+        peak = np.max(np.abs(coarse.sigma[i]))
+        assert np.max(np.abs(got - coarse.sigma[i])) < 2e-3 * peak
+        assert cuts.flux[j] == pytest.approx(coarse.flux_k[i], rel=1e-3)
+
+
+def test_cut_modes_follow_the_wkb_dispersion_relation():
+    # GR01 steady dispersion relation (3kx/2)^2 = 1 + k^2 + k_x^2: between
+    # x = 7 and 14 h each mode's phase in s = y + (3/4)x|x| advances by
+    # int k_x dx - (3/4) k (x2^2 - x1^2) ~ -((1 + k^2)/(3k)) ln 2 (dispersion:
+    # it does not vanish far from the planet, see docs/physics/nonlinear.md
+    # §5), its amplitude grows as |x|^(1/2) (GR01), and the flux is constant
+    cuts = L.solve_cuts([7.0, 14.0], period_h=240.0, k_max_h=4.0)
+    for kk in (0.3, 0.5, 1.0, 2.0):
+        i = int(np.argmin(np.abs(cuts.k_h - kk)))
+        k = cuts.k_h[i]
+        xg = np.linspace(7.0, 14.0, 20001)
+        wkb = integrate.trapezoid(np.sqrt(2.25 * k * k * xg * xg - 1 - k * k), xg) \
+            - 0.75 * k * (14.0 ** 2 - 7.0 ** 2)
+        dphi = np.angle(cuts.sigma_k[1, i] / cuts.sigma_k[0, i])
+        dphi = (dphi - wkb + np.pi) % (2 * np.pi) - np.pi + wkb
+        assert dphi == pytest.approx(wkb, abs=0.03)
+        assert wkb == pytest.approx(-(1 + k * k) / (3 * k) * np.log(2.0), rel=0.05)
+        amp = np.abs(cuts.sigma_k[:, i]) / np.sqrt([7.0, 14.0])
+        if kk >= 0.5:
+            assert amp[1] == pytest.approx(amp[0], rel=0.01)
+    assert cuts.flux[1] == pytest.approx(cuts.flux[0], rel=0.01)
+
+
+def test_cuts_bad_input():
+    with pytest.raises(PhysicsRangeError, match="x_h"):
+        L.solve_cuts([0.0])
+    with pytest.raises(PhysicsRangeError, match="k_max_h"):
+        L.solve_cuts([3.0], k_max_h=200.0)

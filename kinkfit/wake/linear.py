@@ -50,6 +50,8 @@ __all__ = [
     "mach_line_y",
     "sheet_profile",
     "bessel_k0_k1",
+    "SheetCuts",
+    "solve_cuts",
 ]
 
 log = logging.getLogger(__name__)
@@ -631,3 +633,201 @@ def angular_momentum_flux(sol: SheetSolution, x_h):
     rows = np.trapezoid(sol.u * sol.v, dx=dy, axis=1)
     out = np.interp(xq, x, rows)
     return float(out) if out.ndim == 0 else out
+
+
+# --------------------------------------------------------------------------
+# 1-D cuts at arbitrary |x| (adaptive steps; no 2-D grid)
+# --------------------------------------------------------------------------
+@numba.njit(cache=True)
+def _sweep_points(k, eps, xb, xo, ppw, core_steps, direction, out_s, out_v,
+                  out_i):
+    """Integrate one outgoing homogeneous solution through the nodes ``xo``.
+
+    Like :func:`_sweep` but with a local step ``min(2 pi/(ppw k_x,bound(x)),
+    sqrt(x^2+eps^2)/core_steps)`` everywhere, landing exactly on each node of
+    the increasing array ``xo``; ``direction = +1`` starts at ``-xb``
+    and visits ``xo`` in increasing order, ``-1`` starts at ``+xb``.
+    """
+    n = xo.shape[0]
+    x = -xb if direction > 0 else xb
+    sg, vv = _outgoing_start(x, k)
+    ii = 0.0j
+    for m in range(n):
+        j = m if direction > 0 else n - 1 - m
+        target = xo[j]
+        while True:
+            rem = abs(target - x)
+            if rem <= 1e-13 * max(1.0, abs(target)):
+                break
+            h = min(2.0 * math.pi / (ppw * _kx_bound(x, k)),
+                    math.sqrt(x * x + eps * eps) / core_steps)
+            if h >= rem:
+                h = rem
+            step = h if direction > 0 else -h
+            sg, vv, ii = _rk4(x, step, k, eps, sg, vv, ii, 1.0)
+            x += step
+        x = target
+        out_s[j] = sg
+        out_v[j] = vv
+        out_i[j] = ii
+
+
+@numba.njit(cache=True)
+def _solve_points(ks, eps, xo, ppw, c_wkb, core_steps):
+    """Forced outgoing solution of every mode ``k > 0`` at the nodes ``xo``.
+
+    Same boundary-value problem as :func:`_solve_modes`; returns sigma_k,
+    v_k, u_k of shape (nk, len(xo)) and the Wronskian spread.
+    """
+    nk = ks.shape[0]
+    n = xo.shape[0]
+    sig = np.zeros((nk, n), dtype=np.complex128)
+    vel = np.zeros((nk, n), dtype=np.complex128)
+    rad = np.zeros((nk, n), dtype=np.complex128)
+    wspread = np.zeros(nk)
+    sl = np.empty(n, dtype=np.complex128)
+    vl = np.empty(n, dtype=np.complex128)
+    il = np.empty(n, dtype=np.complex128)
+    sr = np.empty(n, dtype=np.complex128)
+    vr = np.empty(n, dtype=np.complex128)
+    ir = np.empty(n, dtype=np.complex128)
+    x_out = max(abs(xo[0]), abs(xo[n - 1]))
+    for m in range(nk):
+        k = ks[m]
+        x_turn = (2.0 / 3.0) * math.sqrt(1.0 + k * k) / k
+        xb = max(math.sqrt(c_wkb / k), 1.5 * x_turn + 6.0, x_out + 6.0)
+        _sweep_points(k, eps, xb, xo, ppw, core_steps, 1, sl, vl, il)
+        _sweep_points(k, eps, xb, xo, ppw, core_steps, -1, sr, vr, ir)
+        wmax = 0.0
+        wmin = 1e300
+        for j in range(n):
+            w = sl[j] * vr[j] - vl[j] * sr[j]
+            aw = abs(w)
+            wmax = max(wmax, aw)
+            wmin = min(wmin, aw)
+            sg = (-sl[j] * ir[j] + sr[j] * il[j]) / w
+            vv = (-vl[j] * ir[j] + vr[j] * il[j]) / w
+            phi, _ = _forcing(xo[j], k, eps)
+            sig[m, j] = sg
+            vel[m, j] = vv
+            rad[m, j] = -2.0j * k * (-1.5 * xo[j] * vv + sg + phi)
+        wspread[m] = (wmax - wmin) / wmax
+    return sig, vel, rad, wspread
+
+
+@dataclass(frozen=True)
+class SheetCuts:
+    """Linear wake on a few lines ``x = const``, crest-centred, for ``Mp = M_th``.
+
+    Attributes
+    ----------
+    x_h : ndarray, shape (nc,)
+        Radial offsets of the cuts / h_p.
+    s_h : ndarray, shape (ns,)
+        ``s = y + (3/4) x|x|`` / h_p (distance from the crest parabola along
+        +y), uniform, symmetric, one full FFT period.
+    sigma, u, v : ndarray, shape (nc, ns)
+        dSigma/Sigma and velocities / c_p.
+    k_h : ndarray, shape (nk,)
+        Wavenumbers solved (1/h_p), ``k_h[0] = 0``.
+    sigma_k : ndarray, shape (nc, nk), complex
+        Fourier coefficients of sigma in ``s`` (``sigma(s) = (1/P) sum``
+        over +-k of ``sigma_k e^{iks}``).
+    flux : ndarray, shape (nc,)
+        One-sided angular-momentum flux ``int u v dy`` (Parseval), units of
+        ``(G Mp)^2 Sigma r_p Omega_p / c^3``.
+    softening_h, period_h : float
+    wronskian_spread : float
+    """
+
+    x_h: np.ndarray
+    s_h: np.ndarray
+    sigma: np.ndarray
+    u: np.ndarray
+    v: np.ndarray
+    k_h: np.ndarray
+    sigma_k: np.ndarray
+    flux: np.ndarray
+    softening_h: float
+    period_h: float
+    wronskian_spread: float
+
+
+def solve_cuts(x_h, *, softening_h: float = 0.1, period_h: float = 240.0,
+               k_max_h: float = 16.0, steps_per_wavelength: float = 40.0,
+               wkb_start: float = 800.0, core_steps: float = 6.0) -> SheetCuts:
+    """Linear sheet response on a few lines ``x = const`` (any ``|x| <= 60 h_p``).
+
+    The same forced radiation problem as :func:`solve_sheet`, integrated
+    with a local RK4 step (``steps_per_wavelength`` per local radial
+    wavelength, ``core_steps`` per softened distance to the planet) and
+    evaluated only at the requested ``x``; the output is centred on the
+    crest parabola (``s = y + (3/4) x|x|``), so the FFT period only has to
+    hold the profile's width, not its drift in ``y``.  Much cheaper than a
+    2-D sheet for matching profiles far from the planet.
+
+    Parameters
+    ----------
+    x_h : array_like, shape (nc,)
+        Radial offsets / h_p, non-zero.
+    softening_h : float
+        Plummer softening / h_p.
+    period_h : float
+        FFT period in ``s`` (sets ``dk = 2 pi / period``), h_p.
+    k_max_h : float
+        Largest wavenumber, 1/h_p (sets the ``s`` resolution ``pi/k_max``).
+    steps_per_wavelength, wkb_start, core_steps : float
+        Integration controls (see :func:`solve_sheet`).
+
+    Returns
+    -------
+    SheetCuts
+    """
+    xo = np.atleast_1d(np.asarray(x_h, dtype=float))
+    if not (np.all(np.isfinite(xo)) and np.all(np.abs(xo) <= 60.0)
+            and np.all(np.abs(xo) > 0)):
+        raise PhysicsRangeError(f"linear cuts: x_h={x_h!r} must be non-zero, "
+                                "|x| <= 60 h_p", key="x_h", value=x_h)
+    _check_inputs(softening_h, 1.0, 4.0, 11, 33, 1.0, steps_per_wavelength)
+    if not (np.isfinite(period_h) and 20.0 <= period_h <= 5000.0):
+        raise PhysicsRangeError(f"linear cuts: period_h={period_h!r} outside "
+                                "[20, 5000] h_p", key="period_h", value=period_h)
+    if not (np.isfinite(k_max_h) and 1.0 <= k_max_h <= 64.0):
+        raise PhysicsRangeError(f"linear cuts: k_max_h={k_max_h!r} outside "
+                                "[1, 64] 1/h_p", key="k_max_h", value=k_max_h)
+    t0 = time.perf_counter()
+    order = np.argsort(xo)
+    xs = xo[order]
+    dk = 2.0 * np.pi / period_h
+    nk = int(math.floor(k_max_h / dk)) + 1
+    ks = dk * np.arange(nk)
+    sig_k, vel_k, rad_k, wspread = _solve_points(
+        ks[1:], float(softening_h), xs, float(steps_per_wavelength),
+        float(wkb_start), float(core_steps))
+    s0, v0, u0 = _k_zero_mode(xs, float(softening_h))
+    inv = np.argsort(order)
+    sig_all = np.vstack([s0[None, :].astype(complex), sig_k])[:, inv]
+    vel_all = np.vstack([v0[None, :].astype(complex), vel_k])[:, inv]
+    rad_all = np.vstack([u0[None, :].astype(complex), rad_k])[:, inv]
+    # crest-centred: f(s) = f(y = s + y_ref), y_ref = -(3/4) x|x|
+    yref = -0.75 * xo * np.abs(xo)
+    shift = np.exp(1j * ks[:, None] * yref[None, :])
+    n_s = 2 * nk - 1
+    ds = period_h / n_s
+    half = nk - 1
+    s = (np.arange(n_s) - half) * ds
+    phase = np.exp(1j * ks * s[0])[:, None]
+
+    def to_real(fk):
+        return np.fft.irfft((fk * shift * phase).T, n=n_s, axis=1) * (n_s / period_h)
+
+    w = np.full(nk, 2.0)
+    w[0] = 1.0
+    flux = (w[:, None] * np.real(rad_all * np.conj(vel_all))).sum(0) / period_h
+    log.info("linear cuts solved: %d cuts, %d modes in %.1f s", xo.size, nk,
+             time.perf_counter() - t0)
+    return SheetCuts(x_h=xo, s_h=s, sigma=to_real(sig_all), u=to_real(rad_all),
+                     v=to_real(vel_all), k_h=ks, sigma_k=(sig_all * shift).T,
+                     flux=flux, softening_h=float(softening_h),
+                     period_h=float(period_h),
+                     wronskian_spread=float(np.max(wspread)) if nk > 1 else 0.0)
