@@ -451,9 +451,13 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
         lo2 -= 1
     while lo2 < b1 and death[base + h_idx[lo2]] <= tau:
         lo2 += 1
-    # effective node positions as in burgers.burgers_nodes (clipped at shocks)
+    # nodes as in burgers.burgers_nodes: hull vertices at y + chi0 tau, clipped at the
+    # equal-area shocks on either side (min with the shock on the right, then max
+    # with the one on the left); a clipped vertex and both sides of a shock take
+    # the fan value (eta - y_j)/tau of their vertex; positions accumulate (running max)
     left = base + h_idx[lo2]
     p_left = y[left] + c[left] * tau
+    v_left = c[left]
     q = lo2 + 1
     right = -1
     while q <= b1:
@@ -462,9 +466,8 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
             break
         q += 1
     if right < 0:
-        return c[left], lo
-    if eta < p_left:
-        return c[left], lo
+        return v_left, lo
+    first = True
     while True:
         nxt = -1
         q2 = q + 1
@@ -473,38 +476,48 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
                 nxt = base + h_idx[q2]
                 break
             q2 += 1
-        p_right = y[right] + c[right] * tau
+        raw_r = y[right] + c[right] * tau
+        p_right = raw_r
         if nxt > right + 1:
             xs2 = (tau * (u0[nxt] - u0[right]) + 0.5 * (y[nxt] ** 2 - y[right] ** 2)) \
                 / (y[nxt] - y[right])
             if xs2 < p_right:
                 p_right = xs2
         gap = right > left + 1
-        xs = 0.0
         if gap:
             xs = (tau * (u0[right] - u0[left]) + 0.5 * (y[right] ** 2 - y[left] ** 2)) \
                 / (y[right] - y[left])
-            if xs < p_left:    # left end of a shock: clipped (no-op after the first pair)
+            if first and xs < p_left:     # the start vertex: clipped on its right only
+                v_left = (xs - y[left]) / tau
                 p_left = xs
-            if xs < p_left:
-                xs = p_left
-            if xs > p_right:
+            if p_right < xs:
                 p_right = xs
-        if p_right < p_left:
-            p_right = p_left
-        if eta <= p_right or nxt < 0:
-            if gap:
-                if eta < xs:
-                    return c[left], lo
-                return c[right], lo
-            if p_right <= p_left:
-                return c[left], lo
-            w = (eta - p_left) / (p_right - p_left)
-            if w > 1.0:
-                w = 1.0
-            return c[left] + w * (c[right] - c[left]), lo
+            v_right = c[right] if p_right == raw_r else (p_right - y[right]) / tau
+            if first and eta < p_left:
+                return v_left, lo
+            xa = xs if xs > p_left else p_left        # accumulated positions
+            pa = p_right if p_right > xa else xa
+            if eta < xa:
+                vs = (xs - y[left]) / tau
+                return v_left + (eta - p_left) * (vs - v_left) / (xa - p_left), lo
+            if eta < pa or nxt < 0:
+                vs = (xs - y[right]) / tau
+                if eta >= pa:
+                    return v_right, lo
+                return vs + (eta - xa) * (v_right - vs) / (pa - xa), lo
+        else:
+            v_right = c[right] if p_right == raw_r else (p_right - y[right]) / tau
+            if first and eta < p_left:
+                return v_left, lo
+            pa = p_right if p_right > p_left else p_left
+            if eta < pa or nxt < 0:
+                if eta >= pa:
+                    return v_right, lo
+                return v_left + (eta - p_left) * (v_right - v_left) / (pa - p_left), lo
+        first = False
         left = right
-        p_left = p_right
+        p_left = pa
+        v_left = v_right
         right = nxt
         q = q2
 
@@ -718,7 +731,7 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
     j0, j1 = int(sel[0]), int(sel[-1]) + 1
     xh = xh_all[j0:j1]
     xcol = 1.0 + xh * a
-    ks, ku, kv = _global_factors(xcol, a, p, q)
+    _, ku, kv = _global_factors(xcol, a, p, q)
     g = amplitude_factor(xcol, a, p, q)
     n_r, n_phi = front_normal(xcol, a, q)
     S = uni["S"][j0:j1]
@@ -726,7 +739,19 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
     lin_f = np.where(dist[:, None] > 1e-9, S / np.sqrt(np.maximum(dist, 1e-300))[:, None], 0.0)
     burg = (dist > 1e-9) & (g > 0)
     itab = _table_from(uni, "i_")
+    # derived (not cached): grid steps, undamped clocks, interleaved sheet columns
+    derived = {}
+    for name in ("out", "in"):
+        u, rate = got["u_" + name], got["rate_" + name]
+        du = np.diff(u)
+        derived["du_" + name] = du
+        derived["idu_" + name] = 1.0 / du
+        derived["t0_" + name] = np.concatenate([[0.0], np.cumsum(0.5 * (rate[1:] + rate[:-1])
+                                                                 * du)])
+    lin = np.ascontiguousarray(np.stack([uni["Su"][j0:j1] * ku[:, None],
+                                         uni["Sv"][j0:j1] * kv[:, None], lin_f], axis=-1))
     return EmulatorTables(
+        lin=lin, **derived,
         a=a, p=p, q=q, gamma=gam, xm=xm, kind=damping_kind, x_lo=x_lo, x_hi=x_hi,
         u_out=got["u_out"], rate_out=got["rate_out"], ld_out=got["ld_out"],
         u_in=got["u_in"], rate_in=got["rate_in"], ld_in=got["ld_in"],
@@ -734,10 +759,7 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
         res_off=got["res_off"], ext=_table_from(got, "e_"),
         col_xh=np.ascontiguousarray(xh), col_prof=np.arange(j0, j1, dtype=np.int64),
         col_burg=burg, col_g=g, col_wr=xcol ** -q * n_r, col_wp=xcol ** -q * n_phi,
-        lin_sig=np.ascontiguousarray(S * ks[:, None]),
-        lin_u=np.ascontiguousarray(uni["Su"][j0:j1] * ku[:, None]),
-        lin_v=np.ascontiguousarray(uni["Sv"][j0:j1] * kv[:, None]),
-        lin_f=np.ascontiguousarray(lin_f), s_grid=np.ascontiguousarray(sheet.y_h, dtype=float),
+        s_grid=np.ascontiguousarray(sheet.y_h, dtype=float),
         inn=itab)
 
 
@@ -746,46 +768,12 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
 # --------------------------------------------------------------------------
 
 @njit(cache=True, inline="always")
-def _grid_interp(u, u_max, n, f):  # pragma: no cover
-    """Linear interpolation on the grid ``u = u_max s^2`` (s uniform on [0, 1])."""
-    s = math.sqrt(u / u_max) * (n - 1)
-    i = int(s)
+def _grid_cell(uu, inv_umax, n, u, inv_du):  # pragma: no cover
+    """Cell ``i`` and weight ``w`` of ``uu`` on the grid ``u = u_max s^2`` (s uniform)."""
+    i = int(math.sqrt(uu * inv_umax) * (n - 1))
     if i >= n - 1:
-        return f[n - 1]
-    w = (u - u_max * (i / (n - 1)) ** 2) / (u_max * ((i + 1) / (n - 1)) ** 2
-                                            - u_max * (i / (n - 1)) ** 2)
-    return f[i] + w * (f[i + 1] - f[i])
-
-
-@njit(cache=True)
-def _lin_interp(xv, xp, fp, i0, i1):  # pragma: no cover
-    """``np.interp(xv, xp[i0:i1], fp[i0:i1], left=0, right=0)``."""
-    if xv < xp[i0] or xv > xp[i1 - 1]:
-        return 0.0
-    lo = i0
-    hi = i1 - 1
-    while hi - lo > 1:
-        mid = (lo + hi) // 2
-        if xp[mid] <= xv:
-            lo = mid
-        else:
-            hi = mid
-    if xp[hi] == xp[lo]:
-        return fp[lo]
-    w = (xv - xp[lo]) / (xp[hi] - xp[lo])
-    return fp[lo] + w * (fp[hi] - fp[lo])
-
-
-@njit(cache=True, inline="always")
-def _phase(x, q):  # pragma: no cover
-    lx = math.log(x)
-    first = math.expm1((1.0 + q) * lx) / (1.0 + q)
-    b = q - 0.5
-    if abs(b) < 1e-12:
-        second = lx
-    else:
-        second = math.expm1(b * lx) / b
-    return first - second
+        return n - 2, 1.0
+    return i, (uu - u[i]) * inv_du[i]
 
 
 @njit(cache=True, inline="always")
@@ -794,87 +782,142 @@ def _wrap(v):  # pragma: no cover
     return (v + math.pi) - two_pi * math.floor((v + math.pi) / two_pi) - math.pi
 
 
+@njit(cache=True, inline="always")
+def _clock(bet, kmax, rate, ld, du, t_buf, e_buf, t_und):  # pragma: no cover
+    """Damped clock ``t' = ∫ D dt`` (cumulative trapezoid) on ``[0, kmax]`` of a radial grid.
+
+    Returns the clock array (the undamped table itself when ``bet == 0``)."""
+    if bet == 0.0:
+        return t_und
+    for k in range(kmax + 1):
+        e_buf[k] = rate[k] * math.exp(bet * ld[k])
+    t_buf[0] = 0.0
+    for k in range(1, kmax + 1):
+        t_buf[k] = t_buf[k - 1] + 0.5 * (e_buf[k] + e_buf[k - 1]) * du[k - 1]
+    return t_buf
+
+
 @njit(cache=True)
-def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
-            u_out, rate_out, ld_out, u_in, rate_in, ld_in,
+def _kernel(order, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, beta, a, q, p, gam,
+            xm, u_out, du_out, idu_out, rate_out, ld_out, t0_out,
+            u_in, du_in, idu_in, rate_in, ld_in, t0_in,
             res_eta, res_u, res_v, res_off,
             ey, ec, eu, ed, es, en, et, eh, eho, esup,
-            col_xh, col_prof, col_burg, col_g, col_wr, col_wp,
-            lin_sig, lin_u, lin_v, lin_f, s_grid,
+            col_xh, col_prof, col_burg, col_g, col_wr, col_wp, lin, s_grid,
             iy, ic, iu, idd, iss, inn, it, ih, iho, isup,
             out_r, out_p):  # pragma: no cover
-    """Fill ``out_r, out_p`` (m, npts), km/s; returns an error code (0 = fine)."""
+    """Fill ``out_r, out_p`` (m, npts), km/s; returns an error code (0 = fine).
+
+    Points arrive sorted by radius (``order`` maps them back to the caller's
+    order) with the walker-independent powers of ``r`` precomputed in ``pw``:
+    ``r^(1+q), r^(q-1/2)`` (``ln r`` when ``q = 1/2``), ``r^(-3/2), r^(p+3q-1),
+    r^(-q)``.  Every power of ``x = r/r_p`` is then a product with a per-walker
+    factor: the point loop calls no transcendental function except ``sqrt``
+    (and ``exp`` for the damping of on-wake exterior points).
+    """
     m = amp.shape[0]
     npts = r.shape[0]
     n = u_out.shape[0]
     umax_out = u_out[n - 1]
     umax_in = u_in[n - 1]
+    iumax_out = 1.0 / umax_out
+    iumax_in = 1.0 / umax_in
     nc = col_xh.shape[0]
     ns = s_grid.shape[0]
     s0 = s_grid[0]
-    ds = (s_grid[ns - 1] - s_grid[0]) / (ns - 1)
-    dxc = (col_xh[nc - 1] - col_xh[0]) / (nc - 1)
-    t_out = np.empty(n)
-    t_in = np.empty(n)
+    s_last = s_grid[ns - 1]
+    ids = (ns - 1) / (s_grid[ns - 1] - s_grid[0])
+    xh0 = col_xh[0]
+    xh_last = col_xh[nc - 1]
+    idxc = (nc - 1) / (col_xh[nc - 1] - col_xh[0])
+    ia = 1.0 / a
+    t_bo = np.empty(n)
+    t_bi = np.empty(n)
+    e_b = np.empty(n)
     tau_c = np.empty(nc)
     d_c = np.empty(nc)
     g_c = np.zeros(nc, dtype=np.int64)
     c2 = 0.5 * (gam + 1.0)
+    b = q - 0.5
+    log_b = abs(b) < 1e-12
+    i1q = 1.0 / (1.0 + q)
+    ib = 0.0 if log_b else 1.0 / b
+    pg = p + 3.0 * q - 1.0
+    umatch = xm * a
+    ksig = 2.0 / (gam + 1.0)
     for w in range(m):
         A = amp[w]
+        if A == 0.0:
+            for i in range(npts):
+                out_r[w, order[i]] = 0.0
+                out_p[w, order[i]] = 0.0
+            continue
         bet = beta[w]
-        # damped clocks t' = ∫ D dt on the radial grids (exact for any damping value)
-        t_out[0] = 0.0
-        t_in[0] = 0.0
-        prev_o = rate_out[0] * math.exp(bet * ld_out[0])
-        prev_i = rate_in[0] * math.exp(bet * ld_in[0])
-        for k in range(1, n):
-            cur_o = rate_out[k] * math.exp(bet * ld_out[k])
-            cur_i = rate_in[k] * math.exp(bet * ld_in[k])
-            t_out[k] = t_out[k - 1] + 0.5 * (cur_o + prev_o) * (u_out[k] - u_out[k - 1])
-            t_in[k] = t_in[k - 1] + 0.5 * (cur_i + prev_i) * (u_in[k] - u_in[k - 1])
-            prev_o = cur_o
-            prev_i = cur_i
-        um = xm * a
-        dm_out = math.exp(bet * _grid_interp(um, umax_out, n, ld_out))
-        dm_in = math.exp(bet * _grid_interp(um, umax_in, n, ld_in))
+        rpw = rp[w]
+        irp = 1.0 / rpw
+        f1 = rpw ** -(1.0 + q)
+        f2 = math.log(rpw) if log_b else rpw ** -b
+        f15 = rpw ** 1.5
+        fg = rpw ** -pg
+        fq = rpw ** q
+        ppw = phi_p[w]
+        cpw = cp[w]
+        # damped clocks t' = ∫ D dt, only as far out as the points (and columns) need
+        uo = max(r_hi * irp - 1.0, umatch)
+        ui = max(1.0 - r_lo * irp, umatch)
+        if uo > umax_out or ui > umax_in:
+            return 2
+        ko = min(n - 1, int(math.sqrt(uo * iumax_out) * (n - 1)) + 2)
+        ki = min(n - 1, int(math.sqrt(ui * iumax_in) * (n - 1)) + 2)
+        t_out = _clock(bet, ko, rate_out, ld_out, du_out, t_bo, e_b, t0_out)
+        t_in = _clock(bet, ki, rate_in, ld_in, du_in, t_bi, e_b, t0_in)
+        k, wk = _grid_cell(umatch, iumax_out, n, u_out, idu_out)
+        dm_out = math.exp(bet * (ld_out[k] + wk * (ld_out[k + 1] - ld_out[k])))
+        k, wk = _grid_cell(umatch, iumax_in, n, u_in, idu_in)
+        dm_in = math.exp(bet * (ld_in[k] + wk * (ld_in[k + 1] - ld_in[k])))
         for j in range(nc):
             uj = abs(col_xh[j]) * a
             if col_xh[j] > 0:
-                tau_c[j] = c2 * A * _grid_interp(uj, umax_out, n, t_out)
-                d_c[j] = math.exp(bet * _grid_interp(uj, umax_out, n, ld_out))
+                k, wk = _grid_cell(uj, iumax_out, n, u_out, idu_out)
+                tau_c[j] = c2 * A * (t_out[k] + wk * (t_out[k + 1] - t_out[k]))
+                d_c[j] = math.exp(bet * (ld_out[k] + wk * (ld_out[k + 1] - ld_out[k])))
             else:
-                tau_c[j] = c2 * A * _grid_interp(uj, umax_in, n, t_in)
-                d_c[j] = math.exp(bet * _grid_interp(uj, umax_in, n, ld_in))
+                k, wk = _grid_cell(uj, iumax_in, n, u_in, idu_in)
+                tau_c[j] = c2 * A * (t_in[k] + wk * (t_in[k + 1] - t_in[k]))
+                d_c[j] = math.exp(bet * (ld_in[k] + wk * (ld_in[k + 1] - ld_in[k])))
             g_c[j] = 0
             if col_burg[j] and tau_c[j] > 1e-12:
                 g_c[j] = _node_of(col_prof[j], tau_c[j], inn, it)
                 if g_c[j] < 0:
                     return 1
+        amp_cp = A * cpw
         for i in range(npts):
-            out_r[w, i] = 0.0
-            out_p[w, i] = 0.0
-            if not inside[i] or A == 0.0:
+            oi = order[i]
+            out_r[w, oi] = 0.0
+            out_p[w, oi] = 0.0
+            if not inside[i]:
                 continue
-            x = r[i] / rp[w]
-            xh = (x - 1.0) / a
+            x = r[i] * irp
+            xh = (x - 1.0) * ia
             sg = 1.0 if x > 1.0 else (-1.0 if x < 1.0 else 0.0)
-            phw = phi_p[w] - sg * _phase(x, q) / a
-            dphi = _wrap(phi[i] - phw)
+            # R02 locus phase (closed form, powers of x as products)
+            if log_b:
+                ph = (pw[0, i] * f1 - 1.0) * i1q - (pw[1, i] - f2)
+            else:
+                ph = (pw[0, i] * f1 - 1.0) * i1q - (pw[1, i] * f2 - 1.0) * ib
+            dphi = _wrap(phi[i] - (ppw - sg * ph * ia))
             if abs(xh) <= xm:
                 # interior: bilinear on (column, s) of the steepened sheet
-                if xh < col_xh[0] or xh > col_xh[nc - 1]:
+                if xh < xh0 or xh > xh_last:
                     continue
-                sh = dphi / a
-                if sh < s0 or sh > s_grid[ns - 1]:
+                sh = dphi * ia
+                if sh < s0 or sh > s_last:
                     continue
-                jf = (xh - col_xh[0]) / dxc
-                j = int(jf)
+                j = int((xh - xh0) * idxc)
                 if j > nc - 2:
                     j = nc - 2
                 wx = (xh - col_xh[j]) / (col_xh[j + 1] - col_xh[j])
-                kf = (sh - s0) / ds
-                k = int(kf)
+                k = int((sh - s0) * ids)
                 if k > ns - 2:
                     k = ns - 2
                 ws = (sh - s_grid[k]) / (s_grid[k + 1] - s_grid[k])
@@ -888,7 +931,7 @@ def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
                     # the two s nodes, in increasing eta (eta = -s on the inner side)
                     ch0 = 0.0
                     ch1 = 0.0
-                    if col_burg[jj] and tau_c[jj] > 1e-12:
+                    if g_c[jj] > 0:
                         pj = col_prof[jj]
                         if col_xh[jj] > 0:
                             v0, hint = _eval_at(pj, s_grid[k], tau_c[jj], g_c[jj], -1, iy, ic,
@@ -900,31 +943,29 @@ def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
                                                 iy, ic, iu, idd, iss, ih, iho, isup)
                             v0, hint = _eval_at(pj, -s_grid[k], tau_c[jj], g_c[jj], hint, iy,
                                                 ic, iu, idd, iss, ih, iho, isup)
-                        ch0 = col_g[jj] * (v0 - lin_f[jj, k])
-                        ch1 = col_g[jj] * (v1 - lin_f[jj, k + 1])
+                        ch0 = col_g[jj] * (v0 - lin[jj, k, 2])
+                        ch1 = col_g[jj] * (v1 - lin[jj, k + 1, 2])
                     w0 = wj * (1.0 - ws) * d_c[jj]
                     w1 = wj * ws * d_c[jj]
-                    ur += w0 * (lin_u[jj, k] + col_wr[jj] * ch0) \
-                        + w1 * (lin_u[jj, k + 1] + col_wr[jj] * ch1)
-                    up += w0 * (lin_v[jj, k] + col_wp[jj] * ch0) \
-                        + w1 * (lin_v[jj, k + 1] + col_wp[jj] * ch1)
-                out_r[w, i] = A * cp[w] * ur
-                out_p[w, i] = A * cp[w] * up
+                    ur += w0 * (lin[jj, k, 0] + col_wr[jj] * ch0) \
+                        + w1 * (lin[jj, k + 1, 0] + col_wr[jj] * ch1)
+                    up += w0 * (lin[jj, k, 1] + col_wp[jj] * ch0) \
+                        + w1 * (lin[jj, k + 1, 1] + col_wp[jj] * ch1)
+                out_r[w, oi] = amp_cp * ur
+                out_p[w, oi] = amp_cp * up
                 continue
             uu = abs(x - 1.0)
             if xh > 0:
-                if uu > umax_out:
-                    return 2
-                tt = _grid_interp(uu, umax_out, n, t_out)
+                k, wk = _grid_cell(uu, iumax_out, n, u_out, idu_out)
+                tt = t_out[k] + wk * (t_out[k + 1] - t_out[k])
                 prof = 0
                 dmatch = dm_out
             else:
-                if uu > umax_in:
-                    return 2
-                tt = _grid_interp(uu, umax_in, n, t_in)
+                k, wk = _grid_cell(uu, iumax_in, n, u_in, idu_in)
+                tt = t_in[k] + wk * (t_in[k + 1] - t_in[k])
                 prof = 1
                 dmatch = dm_in
-            eta = sg * dphi / a
+            eta = sg * dphi * ia
             chi = 0.0
             if tt > 0.0:
                 ge = _node_of(prof, A * tt, en, et)
@@ -932,8 +973,7 @@ def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
                     return 1
                 chi = _eval_at(prof, eta, A * tt, ge, -1, ey, ec, eu, ed, es, eh, eho, esup)[0]
             # non-wave residual of the sheet, tapered off by 2 x_match
-            dist = uu / a
-            wt = (dist - xm) / xm
+            wt = (uu * ia - xm) / xm
             if wt < 0.0:
                 wt = 0.0
             res_w = 0.0
@@ -957,18 +997,17 @@ def _kernel(r, phi, inside, amp, rp, phi_p, cp, beta, a, q, p, gam, xm,
             dd = 1.0
             if bet != 0.0:
                 if prof == 0:
-                    dd = math.exp(bet * _grid_interp(uu, umax_out, n, ld_out))
+                    dd = math.exp(bet * (ld_out[k] + wk * (ld_out[k + 1] - ld_out[k])))
                 else:
-                    dd = math.exp(bet * _grid_interp(uu, umax_in, n, ld_in))
-            lx = math.log(x)
-            shear = abs(math.exp(-1.5 * lx) - 1.0)
-            g = math.sqrt((2.0 / 3.0) * shear * math.exp((p + 3 * q - 1) * lx) / a)
-            sigma = 2.0 * g * dd * A * chi / (gam + 1.0)
-            xq = math.exp(-q * lx)
+                    dd = math.exp(bet * (ld_in[k] + wk * (ld_in[k + 1] - ld_in[k])))
+            shear = abs(pw[2, i] * f15 - 1.0)
+            g = math.sqrt((2.0 / 3.0) * shear * pw[3, i] * fg * ia)
+            sigma = ksig * g * dd * A * chi
+            xq = pw[4, i] * fq
             mach = x * shear / (xq * a)
             norm = math.sqrt(1.0 + mach * mach)
-            out_r[w, i] = cp[w] * (xq * sg * mach / norm * sigma + res_w * rr)
-            out_p[w, i] = cp[w] * (xq * sg / norm * sigma + res_w * rv)
+            out_r[w, oi] = cpw * (xq * sg * mach / norm * sigma + res_w * rr)
+            out_p[w, oi] = cpw * (xq * sg / norm * sigma + res_w * rv)
     return 0
 
 
@@ -989,14 +1028,13 @@ class EmulatorModel:
         self.damping = damping
         self.tables = tables if tables is not None else build_tables(disk, damping,
                                                                       x_range=x_range)
+        self._pts = None
 
-    def _cover(self, r, inside, rp):
-        """Extend the radial tables (rebuild, cached) if the points need it."""
-        if not np.any(inside):
-            return
+    def _cover(self, r_lo, r_hi, rp):
+        """Extend the radial tables (rebuild, cached) if the points in ``[r_lo, r_hi]`` au need it."""
         t = self.tables
-        x_min = float(np.min(r[inside])) / float(np.max(rp))
-        x_max = float(np.max(r[inside])) / float(np.min(rp))
+        x_min = r_lo / float(np.max(rp))
+        x_max = r_hi / float(np.min(rp))
         if x_min >= t.x_lo and x_max <= t.x_hi:
             return
         if x_min < X_LIMITS[0] or x_max > X_LIMITS[1]:
@@ -1055,28 +1093,68 @@ class EmulatorModel:
         cp = disk.aspect_p * np.asarray(keplerian_speed_kms(rp, disk.mstar_msun), dtype=float)
         return amp, rp, az, cp, np.ascontiguousarray(beta, dtype=float)
 
-    def __call__(self, params: dict, r_au, phi_rad):
-        m = len(params["mass"])
-        r = np.ascontiguousarray(np.asarray(r_au, dtype=float).ravel())
-        phi = np.ascontiguousarray(np.asarray(phi_rad, dtype=float).ravel())
-        amp, rp, az, cp, beta = self._walker_arrays(params, m)
+    def _points(self, r_au, phi_rad):
+        """Walker-independent per-point arrays, kept while the caller passes the same points.
+
+        A fit evaluates the model on the same traced points thousands of times:
+        the radius order, the disk mask and the powers of ``r`` are computed once.
+        """
+        r = np.asarray(r_au, dtype=float).ravel()
+        phi = np.asarray(phi_rad, dtype=float).ravel()
+        if r.shape != phi.shape:
+            raise KinkfitError(f"r_au ({r.size} points) and phi_rad ({phi.size} points) "
+                               "differ in length", key="phi_rad", value=phi.size)
+        c = self._pts
+        if c is not None and c["r"].shape == r.shape and \
+                np.array_equal(c["r"], r, equal_nan=True) and \
+                np.array_equal(c["phi"], phi, equal_nan=True):
+            return c
         d = self.disk
-        inside = np.isfinite(r) & np.isfinite(phi) & (r >= d.r_in_au) & (r <= d.r_out_au)
-        self._cover(r, inside, rp)
         # points in order of radius: successive points then use the same table
         # columns and node lists (cache locality; several times faster)
         order = np.argsort(r, kind="stable")
-        r, phi, inside = r[order], phi[order], inside[order]
-        out_r = np.zeros((m, r.size))
-        out_p = np.zeros((m, r.size))
+        rs, ps = r[order], phi[order]
+        inside = np.isfinite(rs) & np.isfinite(ps) & (rs >= d.r_in_au) & (rs <= d.r_out_au)
+        rr = np.where(inside, rs, 1.0)
+        q, pp = d.q, d.p
+        second = np.log(rr) if abs(q - 0.5) < 1e-12 else rr ** (q - 0.5)
+        pw = np.ascontiguousarray(np.stack([rr ** (1.0 + q), second, rr ** -1.5,
+                                            rr ** (pp + 3.0 * q - 1.0), rr ** -q]))
+        c = dict(r=r.copy(), phi=phi.copy(), order=order.astype(np.int64),
+                 rs=np.ascontiguousarray(rr), ps=np.ascontiguousarray(np.where(inside, ps, 0.0)),
+                 inside=inside, pw=pw, any=bool(inside.any()),
+                 r_lo=float(rr[inside].min()) if inside.any() else 1.0,
+                 r_hi=float(rr[inside].max()) if inside.any() else 1.0)
+        self._pts = c
+        return c
+
+    def __getstate__(self):
+        state = self.__dict__.copy()
+        state["_pts"] = None          # per-point cache: rebuilt on first use
+        return state
+
+    def __call__(self, params: dict, r_au, phi_rad):
+        m = len(params["mass"])
+        amp, rp, az, cp, beta = self._walker_arrays(params, m)
+        c = self._points(r_au, phi_rad)
+        npts = c["r"].size
+        out_r = np.empty((m, npts))
+        out_p = np.empty((m, npts))
+        if not c["any"]:
+            out_r[:] = 0.0
+            out_p[:] = 0.0
+            return out_r, out_p
+        self._cover(c["r_lo"], c["r_hi"], rp)
         t = self.tables
         e, ii = t.ext, t.inn
-        code = _kernel(r, phi, inside, amp, rp, az, cp, beta, t.a, t.q, t.p, t.gamma, t.xm,
-                       t.u_out, t.rate_out, t.ld_out, t.u_in, t.rate_in, t.ld_in,
+        code = _kernel(c["order"], c["rs"], c["ps"], c["inside"], c["pw"], c["r_lo"],
+                       c["r_hi"], amp, rp, az, cp, beta, t.a, t.q, t.p, t.gamma, t.xm,
+                       t.u_out, t.du_out, t.idu_out, t.rate_out, t.ld_out, t.t0_out,
+                       t.u_in, t.du_in, t.idu_in, t.rate_in, t.ld_in, t.t0_in,
                        t.res_eta, t.res_u, t.res_v, t.res_off,
                        e.y, e.chi0, e.u0, e.death, e.s_off, e.tau_nodes, e.t_off, e.h_idx,
                        e.h_off, e.support, t.col_xh, t.col_prof, t.col_burg, t.col_g, t.col_wr,
-                       t.col_wp, t.lin_sig, t.lin_u, t.lin_v, t.lin_f, t.s_grid,
+                       t.col_wp, t.lin, t.s_grid,
                        ii.y, ii.chi0, ii.u0, ii.death, ii.s_off, ii.tau_nodes, ii.t_off,
                        ii.h_idx, ii.h_off, ii.support, out_r, out_p)
         if code == 1:
@@ -1088,11 +1166,7 @@ class EmulatorModel:
                 f"traced points beyond r/r_p in [{t.x_lo:g}, {t.x_hi:g}] of the emulator "
                 f"tables (planet radius {rp.min():.4g}-{rp.max():.4g} au)", key="radius",
                 value=float(rp.min()))
-        res_r = np.empty_like(out_r)
-        res_p = np.empty_like(out_p)
-        res_r[:, order] = out_r
-        res_p[:, order] = out_p
-        return res_r, res_p
+        return out_r, out_p
 
 
 def make_fit_model(disk: WakeDisk, damping: str, method: str = "emulator", **kwargs):
