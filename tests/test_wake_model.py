@@ -194,13 +194,61 @@ def test_insensitive_to_matching_distance(sheet):
         assert x2 == pytest.approx(x1, rel=0.05)
     # (b) far-field N-wave strength (∫|dSigma/Sigma| d eta across the wake)
     # near the default match: < 3 % between 7 and 7.5 h_p.  NOT insensitive over
-    # a factor 2: 3.5 -> 7 h_p raises it by 15-60 %, 7 -> 12 h_p (larger sheet)
-    # by a further ~15 %, because the linear profile keeps reshaping
-    # (docs/physics/nonlinear.md §6).
+    # a factor 2 (3.5 -> 7 h_p: +66-75 % at 20 h_p), because dispersion keeps
+    # reshaping the linear profile's trough (docs/physics/nonlinear.md §5 and
+    # test_far_field_follows_the_lobe_areas_of_the_matching_profile).
     for A, x in ((0.01, 1.5), (0.05, 2.0), (0.05, 0.6)):
         l1 = [np.sum(np.abs(cut(x, A, x_match_h=xm, half=60, n=6001)[3]))
               for xm in (7.0, 7.5)]
         assert l1[1] == pytest.approx(l1[0], rel=0.03)
+
+
+def test_far_field_follows_the_lobe_areas_of_the_matching_profile():
+    # W74 §2.8 (N wave from Hopf-Lax): long after the shocks form, the lobes
+    # have areas L+ = U(inf) - min U and L- = -min U of U = ∫chi d eta of the
+    # matching profile, and peaks sqrt(2 L / t).  So the far field's change with
+    # the matching distance is sqrt(L(x_m2)/L(x_m1)) exactly: the whole
+    # sensitivity is the linear profile's lobe areas, which dispersion
+    # (phase -(1+k^2)/(3k) ln x per mode, GR01 dispersion relation) keeps
+    # changing at the scales k < 0.5/h_p that carry them.
+    A, x = 1.0, 2.0                     # A t ≈ 570 >> A t_sh ≈ 0.45: asymptotic
+    peaks, lobes = {}, {}
+    for xm in (3.5, 7.0):
+        _, _, _, sg = cut(x, A, x_match_h=xm, half=60, n=6001)
+        m = wake_skeleton(DISK, x_lo=0.2, x_hi=3.0, x_match_h=xm).outer.match
+        u = np.concatenate([[0], np.cumsum(0.5 * (m.chi[1:] + m.chi[:-1]) * np.diff(m.eta))])
+        peaks[xm] = np.array([sg.max(), -sg.min()])
+        lobes[xm] = np.array([u[-1] - u.min(), -u.min()])
+    ratio = peaks[7.0] / peaks[3.5]
+    assert ratio == pytest.approx(np.sqrt(lobes[7.0] / lobes[3.5]), rel=0.02)
+    assert np.all(ratio > 1.2)          # the documented sensitivity (docs §5)
+
+
+def test_default_evaluation_is_exact_in_time():
+    # Hopf-Lax / equal-area solution (W74, Lax 1957) at each point's own time
+    # (snapped to 0.1 % in t) against one solution per distinct time; the old
+    # blend of 400 grid times is much worse next to moving shocks
+    import kinkfit.wake.model as wm
+    rng = np.random.default_rng(20261202)
+    # many distinct radii (> 400), else the blend path is exact too
+    X = 1 + A_P * rng.uniform(8.0, 20.0, 20000)
+    E = rng.uniform(-12.0, 12.0, X.size)
+    phi = wake_azimuth(X, A_P, DISK.q, 0.4) + E * A_P
+    p = planet(0.5)
+    dflt = wake_perturbations(X * RP, phi, p, DISK)[2]
+    saved = wm._N_TIME
+    try:
+        wm._N_TIME = 10 ** 7
+        exact = wake_perturbations(X * RP, phi, p, DISK)[2]
+        wm._N_TIME = 400
+        blend = wake_perturbations(X * RP, phi, p, DISK)[2]
+    finally:
+        wm._N_TIME = saved
+    peak = np.max(np.abs(exact))
+    # default: bounded everywhere (measured 4.5e-4 of the peak); blend: a
+    # staircase next to shocks (measured 0.21 of the peak at one point)
+    assert np.max(np.abs(dflt - exact)) < 2e-3 * peak
+    assert np.max(np.abs(blend - exact)) > 0.05 * peak
 
 
 def test_mass_scaling_linear_near_sqrt_far():

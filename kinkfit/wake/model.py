@@ -68,7 +68,15 @@ def default_match_h(aspect_p: float) -> float:
     """Default matching distance (h_p): ``min(7, 0.35 / aspect_p)``."""
     return min(DEFAULT_MATCH_H, round(MAX_MATCH_RP / aspect_p, 9))
 _N_ARM = 3000       # points of the 1-D tables per arm
-_N_TIME = 400       # Burgers grid times per arm
+#: Burgers grid times per arm, or None (default): every point is evaluated
+#: exactly (one entropy solution per distinct time) at its own time snapped to
+#: a log-uniform grid of step ``_DLNT`` in ln t (0.1 %, i.e. 0.04 % in |X|
+#: near the planet, where t ∝ |X|^(5/2)).  With an integer grid, points between
+#: two grid times blend the two solutions linearly in t, which next to a
+#: moving shock leaves a two-step staircase (local errors up to ~30 % of the
+#: peak at 400 times; docs/physics/nonlinear.md §5).
+_N_TIME = None
+_DLNT = 1e-3
 
 
 @dataclass(frozen=True)
@@ -414,6 +422,14 @@ def _exterior(arm: _Arm, sk: WakeSkeleton, amp: float, clock: str, x, phi, phi_p
     t0 = arm.t_clock[0]
     if clock == "matching":
         t_pts = t_pts - t0
+    if _N_TIME is None:
+        # exact at snapped times: one entropy solution per distinct snapped
+        # time (burgers_at_times evaluates exactly when the grid is no shorter)
+        pos = t_pts > 0
+        t_pts = t_pts.copy()
+        t_pts[pos] = np.exp(np.round(np.log(t_pts[pos]) / _DLNT) * _DLNT)
+        grid = np.unique(t_pts) if t_pts.size else np.array([max(t0, 0.0)])
+    elif clock == "matching":
         t_hi = max(float(t_pts.max(initial=0.0)), 1e-9)
         grid = np.concatenate([[0.0], np.geomspace(1e-5 * t_hi, t_hi, _N_TIME)])
     else:
