@@ -26,6 +26,13 @@ def main():
     t = time.perf_counter()
     L.get_sheet_solution()
     print(f"default solution, warm table cache: {time.perf_counter() - t:.2f} s")
+    t = time.perf_counter()
+    L.solve_cuts([3.5, 7.0, 10.0, 14.0])
+    print(f"4 cuts at 3.5-14 h (solve_cuts, k_max 16/h, period 240 h): "
+          f"{time.perf_counter() - t:.2f} s")
+    t = time.perf_counter()
+    L.solve_cuts([7.0, 14.0, 20.0, 28.0], period_h=480.0, k_max_h=12.0)
+    print(f"4 cuts at 7-28 h (k_max 12/h, period 480 h): {time.perf_counter() - t:.2f} s")
     print("x/h   F_J (real space)   F_J (Fourier)")
     for x in (1.0, 2.0, 3.0, 4.0, 6.0, 8.0):
         i = int(np.argmin(np.abs(sol.x_h - x)))
