@@ -21,8 +21,9 @@ planet.  To keep the field continuous the sheet inside the matching distance
 receives the same treatment, column by column (each sheet column at ``X`` is
 steepened for ``t(X) ∝ |X|^(5/2)``, which vanishes at the planet).  Then
 shock distances follow GR01's ``Mp^(-2/5)`` law and do not depend on the
-matching distance; the far-field N-wave strength still does at the 10-20 %
-level (docs/physics/nonlinear.md §5).  ``clock="matching"`` starts the clock at
+matching distance; the far-field N-wave strength still does, by 25-45 % per
+factor 2, because dispersion keeps reshaping the linear profile's lobes
+(docs/physics/nonlinear.md §5: a model systematic, not a numerical error).  ``clock="matching"`` starts the clock at
 the matching distance instead (plain linear sheet inside; shocks further out
 and a flatter mass scaling).
 
@@ -57,8 +58,9 @@ __all__ = ["WakeDisk", "Planet", "Damping", "WakeSkeleton", "thermal_mass_msun",
 log = logging.getLogger(__name__)
 
 #: default matching distance |r - r_p| / h_p between the sheet and Burgers.
-#: The far-field N-wave strength converges only once the linear profile has
-#: reached its asymptotic shape (|X| >~ 7 h_p; docs/physics/nonlinear.md §6).
+#: The far-field N-wave strength does not converge with it (dispersion of the
+#: linear profile's trough, docs/physics/nonlinear.md §5); 7 h_p keeps the local
+#: sheet within 0.35 r_p for h/r >= 0.05 and launches modes down to k = 0.1/h_p.
 DEFAULT_MATCH_H = 7.0
 #: the local sheet is used at most this far from the planet, in r_p
 MAX_MATCH_RP = 0.35
