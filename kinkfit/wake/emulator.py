@@ -266,6 +266,9 @@ class ProfileTable:
         for k in self.fields:
             setattr(self, k, np.ascontiguousarray(arrays[k]))
 
+    def __reduce__(self):
+        return (_profile_table, (self.arrays(),))
+
     def arrays(self, prefix=""):
         return {prefix + k: getattr(self, k) for k in self.fields}
 
@@ -273,6 +276,10 @@ class ProfileTable:
     def tau_max(self):
         """Largest tabulated time of each profile, ``(nprof,)``."""
         return self.tau_nodes[self.t_off[1:] - 1]
+
+
+def _profile_table(arrays):
+    return ProfileTable(**arrays)
 
 
 def build_profile_table(profiles, tau_max, *, n_nodes=_N_NODES):
@@ -339,7 +346,7 @@ def build_profile_table(profiles, tau_max, *, n_nodes=_N_NODES):
                         support=np.array(support, dtype=float).reshape(-1, 4))
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True, _nrt=False)
 def _node_of(p, tau, nodes, t_off):  # pragma: no cover
     """Index ``g`` of the node list live at ``tau`` (``nodes[g-1] <= tau < nodes[g]``), -1 beyond."""
     n0 = t_off[p]
@@ -369,7 +376,7 @@ def _profile_eval(p, eta, tau, y, c, u0, death, s_off, nodes, t_off, h_idx, h_of
     return _eval_at(p, eta, tau, g, -1, y, c, u0, death, s_off, h_idx, h_off, support)[0]
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True, _nrt=False)
 def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
              support):  # pragma: no cover
     """Entropy solution of profile ``p`` at ``(eta, tau)`` (0 outside its support).
@@ -767,7 +774,7 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
 # compiled evaluation
 # --------------------------------------------------------------------------
 
-@njit(cache=True, inline="always")
+@njit(cache=True, _nrt=False)
 def _grid_cell(uu, inv_umax, n, u, inv_du):  # pragma: no cover
     """Cell ``i`` and weight ``w`` of ``uu`` on the grid ``u = u_max s^2`` (s uniform)."""
     i = int(math.sqrt(uu * inv_umax) * (n - 1))
@@ -776,13 +783,13 @@ def _grid_cell(uu, inv_umax, n, u, inv_du):  # pragma: no cover
     return i, (uu - u[i]) * inv_du[i]
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _wrap(v):  # pragma: no cover
     two_pi = 2.0 * math.pi
     return (v + math.pi) - two_pi * math.floor((v + math.pi) / two_pi) - math.pi
 
 
-@njit(cache=True, inline="always")
+@njit(cache=True)
 def _clock(bet, kmax, rate, ld, du, t_buf, e_buf, t_und):  # pragma: no cover
     """Damped clock ``t' = ∫ D dt`` (cumulative trapezoid) on ``[0, kmax]`` of a radial grid.
 
