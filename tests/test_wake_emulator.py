@@ -147,6 +147,14 @@ def test_profile_solution_random_times_near_shocks(sheet, n_nodes):
         ref = burgers_solution(prof.eta, prof.chi, tau, eta)[0]
         got = em.profile_solution(tab, 0, eta, tau)
         assert np.max(np.abs(got - ref)) <= 1e-9 * np.max(np.abs(ref)), tau
+        # the local search of the interior columns (from a sample index near eta,
+        # or anywhere: it falls back to bisection) gives the same solution
+        n = tab.s_off[1]
+        near = np.clip(np.searchsorted(tab.y[:n], eta) + rng.integers(-3, 4, eta.size), 0,
+                       n - 1)
+        for guess in (near, rng.integers(0, n, eta.size)):
+            got = em.profile_solution(tab, 0, eta, tau, guess=guess)
+            assert np.max(np.abs(got - ref)) <= 1e-9 * np.max(np.abs(ref)), tau
 
 
 def test_mass_scaling_of_burgers(unit_table):

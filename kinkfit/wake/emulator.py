@@ -365,14 +365,21 @@ def _node_of(p, tau, nodes, t_off):  # pragma: no cover
 
 
 @njit(cache=True)
-def _profile_eval(p, eta, tau, y, c, u0, death, s_off, nodes, t_off, h_idx, h_off,
+def _profile_eval(p, eta, tau, guess, y, c, u0, death, s_off, nodes, t_off, h_idx, h_off,
                   support):  # pragma: no cover
-    """Entropy solution of profile ``p`` at ``(eta, tau)``; NaN beyond the tables."""
+    """Entropy solution of profile ``p`` at ``(eta, tau)``; NaN beyond the tables.
+
+    ``guess < 0``: bisection (:func:`_eval_at`); else the local search of
+    :func:`_eval_local` from global sample index ``guess``.
+    """
     if tau < 0.0:
         tau = 0.0
     g = _node_of(p, tau, nodes, t_off)
     if g < 0:
         return np.nan
+    if guess >= 0:
+        return _eval_local(p, eta, tau, g, guess, y, c, u0, death, s_off, nodes, h_idx, h_off,
+                           support)[0]
     return _eval_at(p, eta, tau, g, -1, y, c, u0, death, s_off, h_idx, h_off, support)[0]
 
 
@@ -431,10 +438,94 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
         if w < 0.0:
             w = 0.0
         return c[a] + w * (c[a + 1] - c[a]), lo
-    # stream the superset list (live at the node before tau) from a safe start:
-    # two live samples left of the bisection result with raw position <= eta (raw
-    # positions are not monotone next to shocks, where hull vertices are clipped)
-    i_start = h_idx[lo]
+    return _stream(p, eta, tau, g, h_idx[lo], y, c, u0, death, s_off, h_idx, h_off), lo
+
+
+#: members scanned by :func:`_eval_local` before it falls back to bisection
+_SCAN_MAX = 24
+
+
+@njit(cache=True, _nrt=False)
+def _eval_local(p, eta, tau, g, j0, y, c, u0, death, s_off, nodes, h_idx, h_off,
+                support):  # pragma: no cover
+    """:func:`_eval_at` searching from a sample index ``j0`` near the answer.
+
+    The bracket (last member of list ``g`` with ``y + chi0 tau <= eta``) is found
+    by stepping over the members (``death > tau_nodes[g]``) from ``j0``: a few
+    neighbouring samples, one or two cache lines, when ``eta`` is close to
+    sample ``j0``'s characteristic (the interior columns, queried on their own
+    sample grid); beyond ``_SCAN_MAX`` steps it falls back to bisection.  The
+    result does not depend on ``j0``.  Returns the value and the bracket
+    (global sample index, usable as the next ``j0``).
+    """
+    base = s_off[p]
+    last = s_off[p + 1] - 1     # the end samples never leave the hull
+    if eta < support[p, 0] - math.sqrt(2.0 * tau * support[p, 2]) or \
+            eta > support[p, 1] + math.sqrt(2.0 * tau * support[p, 3]):
+        return 0.0, j0
+    if eta < y[base] + c[base] * tau or eta > y[last] + c[last] * tau:
+        return 0.0, j0
+    big = nodes[g]
+    j = j0
+    if j < base:
+        j = base
+    if j > last:
+        j = last
+    while death[j] <= big:
+        j -= 1
+    steps = 0
+    if y[j] + c[j] * tau <= eta:
+        while j < last:
+            k = j + 1
+            while death[k] <= big:
+                k += 1
+            if y[k] + c[k] * tau > eta:
+                break
+            j = k
+            steps += 1
+            if steps > _SCAN_MAX:
+                v, lo = _eval_at(p, eta, tau, g, -1, y, c, u0, death, s_off, h_idx, h_off,
+                                 support)
+                return v, (base + h_idx[lo] if lo >= 0 else j0)
+    else:
+        while True:
+            j -= 1
+            while death[j] <= big:
+                j -= 1
+            steps += 1
+            if y[j] + c[j] * tau <= eta:
+                break
+            if steps > _SCAN_MAX:
+                v, lo = _eval_at(p, eta, tau, g, -1, y, c, u0, death, s_off, h_idx, h_off,
+                                 support)
+                return v, (base + h_idx[lo] if lo >= 0 else j0)
+    if j >= last:
+        j = last - 1
+        while death[j] <= big:
+            j -= 1
+    # fast path: four consecutive members, no shock nearby
+    if j - 1 >= base and j + 2 <= last and death[j - 1] > big and death[j + 1] > big \
+            and death[j + 2] > big:
+        pl = y[j] + c[j] * tau
+        pr = y[j + 1] + c[j + 1] * tau
+        if pr <= pl:
+            return c[j], j
+        w = (eta - pl) / (pr - pl)
+        if w < 0.0:
+            w = 0.0
+        return c[j] + w * (c[j + 1] - c[j]), j
+    return _stream(p, eta, tau, g, j - base, y, c, u0, death, s_off, h_idx, h_off), j
+
+
+@njit(cache=True, _nrt=False)
+def _stream(p, eta, tau, g, i_start, y, c, u0, death, s_off, h_idx, h_off):  # pragma: no cover
+    """Value at ``eta`` streamed over the live samples from near local sample ``i_start``.
+
+    The superset list (live at the node before ``tau``) is streamed from a safe
+    start: live samples left of ``i_start`` with raw position <= eta (raw
+    positions are not monotone next to shocks, where hull vertices are clipped).
+    """
+    base = s_off[p]
     b0 = h_off[g - 1]
     b1 = h_off[g] - 1
     lo2 = b0
@@ -473,7 +564,7 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
             break
         q += 1
     if right < 0:
-        return v_left, lo
+        return v_left
     first = True
     while True:
         nxt = -1
@@ -501,26 +592,26 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
                 p_right = xs
             v_right = c[right] if p_right == raw_r else (p_right - y[right]) / tau
             if first and eta < p_left:
-                return v_left, lo
+                return v_left
             xa = xs if xs > p_left else p_left        # accumulated positions
             pa = p_right if p_right > xa else xa
             if eta < xa:
                 vs = (xs - y[left]) / tau
-                return v_left + (eta - p_left) * (vs - v_left) / (xa - p_left), lo
+                return v_left + (eta - p_left) * (vs - v_left) / (xa - p_left)
             if eta < pa or nxt < 0:
                 vs = (xs - y[right]) / tau
                 if eta >= pa:
-                    return v_right, lo
-                return vs + (eta - xa) * (v_right - vs) / (pa - xa), lo
+                    return v_right
+                return vs + (eta - xa) * (v_right - vs) / (pa - xa)
         else:
             v_right = c[right] if p_right == raw_r else (p_right - y[right]) / tau
             if first and eta < p_left:
-                return v_left, lo
+                return v_left
             pa = p_right if p_right > p_left else p_left
             if eta < pa or nxt < 0:
                 if eta >= pa:
-                    return v_right, lo
-                return v_left + (eta - p_left) * (v_right - v_left) / (pa - p_left), lo
+                    return v_right
+                return v_left + (eta - p_left) * (v_right - v_left) / (pa - p_left)
         first = False
         left = right
         p_left = pa
@@ -529,7 +620,7 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
         q = q2
 
 
-def profile_solution(table: ProfileTable, p: int, eta, tau):
+def profile_solution(table: ProfileTable, p: int, eta, tau, *, guess=None):
     """Burgers solution of profile ``p`` of ``table`` at points ``eta`` and one time ``tau``.
 
     Parameters
@@ -541,6 +632,10 @@ def profile_solution(table: ProfileTable, p: int, eta, tau):
         Positions (any shape).
     tau : float
         Time (>= 0, within the tabulated range).
+    guess : ndarray of int, optional
+        Sample indices (local to the profile, same shape as ``eta``) from which
+        the compiled local search starts (the path of the interior columns);
+        the result does not depend on them.  Default: bisection.
 
     Returns
     -------
@@ -550,9 +645,12 @@ def profile_solution(table: ProfileTable, p: int, eta, tau):
     eta = np.asarray(eta, dtype=float)
     out = np.empty(eta.size)
     t = table
+    start = np.full(eta.size, -1, dtype=np.int64) if guess is None else \
+        int(t.s_off[p]) + np.asarray(guess, dtype=np.int64).ravel()
     for k, e in enumerate(eta.ravel()):
-        out[k] = _profile_eval(p, float(e), float(tau), t.y, t.chi0, t.u0, t.death, t.s_off,
-                               t.tau_nodes, t.t_off, t.h_idx, t.h_off, t.support)
+        out[k] = _profile_eval(p, float(e), float(tau), int(start[k]), t.y, t.chi0, t.u0,
+                               t.death, t.s_off, t.tau_nodes, t.t_off, t.h_idx, t.h_off,
+                               t.support)
     if np.any(np.isnan(out)):
         raise PhysicsRangeError(f"time {tau!r} beyond the tabulated range of profile {p}",
                                 key="tau", value=tau)
@@ -755,6 +853,14 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
         derived["idu_" + name] = 1.0 / du
         derived["t0_" + name] = np.concatenate([[0.0], np.cumsum(0.5 * (rate[1:] + rate[:-1])
                                                                  * du)])
+    # global sample index of the first s node of every column (x < 0: of -s_max,
+    # the profile is reversed): the interior queries sit on the profile samples
+    s_grid = np.ascontiguousarray(sheet.y_h, dtype=float)
+    col_first = np.zeros(xh.size, dtype=np.int64)
+    for jc, pc in enumerate(range(j0, j1)):
+        ys = itab.y[itab.s_off[pc]:itab.s_off[pc + 1]]
+        e0 = s_grid[0] if xh[jc] > 0 else -s_grid[-1]
+        col_first[jc] = itab.s_off[pc] + min(int(np.searchsorted(ys, e0 - 1e-9)), ys.size - 1)
     lin = np.ascontiguousarray(np.stack([uni["Su"][j0:j1] * ku[:, None],
                                          uni["Sv"][j0:j1] * kv[:, None], lin_f], axis=-1))
     return EmulatorTables(
@@ -766,8 +872,7 @@ def build_tables(disk: WakeDisk, damping_kind: str, *, x_range=X_RANGE, sheet=No
         res_off=got["res_off"], ext=_table_from(got, "e_"),
         col_xh=np.ascontiguousarray(xh), col_prof=np.arange(j0, j1, dtype=np.int64),
         col_burg=burg, col_g=g, col_wr=xcol ** -q * n_r, col_wp=xcol ** -q * n_phi,
-        s_grid=np.ascontiguousarray(sheet.y_h, dtype=float),
-        inn=itab)
+        s_grid=s_grid, col_first=col_first, inn=itab)
 
 
 # --------------------------------------------------------------------------
@@ -810,7 +915,7 @@ def _kernel(order, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, beta, a, 
             u_in, du_in, idu_in, rate_in, ld_in, t0_in,
             res_eta, res_u, res_v, res_off,
             ey, ec, eu, ed, es, en, et, eh, eho, esup,
-            col_xh, col_prof, col_burg, col_g, col_wr, col_wp, lin, s_grid,
+            col_xh, col_prof, col_burg, col_g, col_wr, col_wp, lin, s_grid, col_first,
             iy, ic, iu, idd, iss, inn, it, ih, iho, isup,
             out_r, out_p):  # pragma: no cover
     """Fill ``out_r, out_p`` (m, npts), km/s; returns an error code (0 = fine).
@@ -940,16 +1045,19 @@ def _kernel(order, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, beta, a, 
                     ch1 = 0.0
                     if g_c[jj] > 0:
                         pj = col_prof[jj]
+                        # s node k is profile sample col_first + k (reversed for x < 0)
                         if col_xh[jj] > 0:
-                            v0, hint = _eval_at(pj, s_grid[k], tau_c[jj], g_c[jj], -1, iy, ic,
-                                                iu, idd, iss, ih, iho, isup)
-                            v1, hint = _eval_at(pj, s_grid[k + 1], tau_c[jj], g_c[jj], hint,
-                                                iy, ic, iu, idd, iss, ih, iho, isup)
+                            v0, jb = _eval_local(pj, s_grid[k], tau_c[jj], g_c[jj],
+                                                 col_first[jj] + k, iy, ic, iu, idd, iss,
+                                                 inn, ih, iho, isup)
+                            v1, jb = _eval_local(pj, s_grid[k + 1], tau_c[jj], g_c[jj], jb + 1,
+                                                 iy, ic, iu, idd, iss, inn, ih, iho, isup)
                         else:
-                            v1, hint = _eval_at(pj, -s_grid[k + 1], tau_c[jj], g_c[jj], -1,
-                                                iy, ic, iu, idd, iss, ih, iho, isup)
-                            v0, hint = _eval_at(pj, -s_grid[k], tau_c[jj], g_c[jj], hint, iy,
-                                                ic, iu, idd, iss, ih, iho, isup)
+                            v1, jb = _eval_local(pj, -s_grid[k + 1], tau_c[jj], g_c[jj],
+                                                 col_first[jj] + ns - 2 - k, iy, ic, iu, idd,
+                                                 iss, inn, ih, iho, isup)
+                            v0, jb = _eval_local(pj, -s_grid[k], tau_c[jj], g_c[jj], jb + 1,
+                                                 iy, ic, iu, idd, iss, inn, ih, iho, isup)
                         ch0 = col_g[jj] * (v0 - lin[jj, k, 2])
                         ch1 = col_g[jj] * (v1 - lin[jj, k + 1, 2])
                     w0 = wj * (1.0 - ws) * d_c[jj]
@@ -1161,7 +1269,7 @@ class EmulatorModel:
                        t.res_eta, t.res_u, t.res_v, t.res_off,
                        e.y, e.chi0, e.u0, e.death, e.s_off, e.tau_nodes, e.t_off, e.h_idx,
                        e.h_off, e.support, t.col_xh, t.col_prof, t.col_burg, t.col_g, t.col_wr,
-                       t.col_wp, t.lin, t.s_grid,
+                       t.col_wp, t.lin, t.s_grid, t.col_first,
                        ii.y, ii.chi0, ii.u0, ii.death, ii.s_off, ii.tau_nodes, ii.t_off,
                        ii.h_idx, ii.h_off, ii.support, out_r, out_p)
         if code == 1:
