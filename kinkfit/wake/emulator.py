@@ -1033,6 +1033,20 @@ def _kernel(order, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, beta, a, 
                 if k > ns - 2:
                     k = ns - 2
                 ws = (sh - s_grid[k]) / (s_grid[k + 1] - s_grid[k])
+                # sheet values of the cell read first: their cache misses overlap
+                # with the Burgers look-ups below
+                a00 = lin[j, k, 0]
+                a01 = lin[j, k, 1]
+                a02 = lin[j, k, 2]
+                a10 = lin[j, k + 1, 0]
+                a11 = lin[j, k + 1, 1]
+                a12 = lin[j, k + 1, 2]
+                b00 = lin[j + 1, k, 0]
+                b01 = lin[j + 1, k, 1]
+                b02 = lin[j + 1, k, 2]
+                b10 = lin[j + 1, k + 1, 0]
+                b11 = lin[j + 1, k + 1, 1]
+                b12 = lin[j + 1, k + 1, 2]
                 ur = 0.0
                 up = 0.0
                 for dj in range(2):
@@ -1040,6 +1054,10 @@ def _kernel(order, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, beta, a, 
                     wj = wx if dj == 1 else 1.0 - wx
                     if wj == 0.0:
                         continue
+                    if dj == 0:
+                        sf0, su0, sv0, sf1, su1, sv1 = a02, a00, a01, a12, a10, a11
+                    else:
+                        sf0, su0, sv0, sf1, su1, sv1 = b02, b00, b01, b12, b10, b11
                     # the two s nodes, in increasing eta (eta = -s on the inner side)
                     ch0 = 0.0
                     ch1 = 0.0
@@ -1058,14 +1076,12 @@ def _kernel(order, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, beta, a, 
                                                  iss, inn, ih, iho, isup)
                             v0, jb = _eval_local(pj, -s_grid[k], tau_c[jj], g_c[jj], jb + 1,
                                                  iy, ic, iu, idd, iss, inn, ih, iho, isup)
-                        ch0 = col_g[jj] * (v0 - lin[jj, k, 2])
-                        ch1 = col_g[jj] * (v1 - lin[jj, k + 1, 2])
+                        ch0 = col_g[jj] * (v0 - sf0)
+                        ch1 = col_g[jj] * (v1 - sf1)
                     w0 = wj * (1.0 - ws) * d_c[jj]
                     w1 = wj * ws * d_c[jj]
-                    ur += w0 * (lin[jj, k, 0] + col_wr[jj] * ch0) \
-                        + w1 * (lin[jj, k + 1, 0] + col_wr[jj] * ch1)
-                    up += w0 * (lin[jj, k, 1] + col_wp[jj] * ch0) \
-                        + w1 * (lin[jj, k + 1, 1] + col_wp[jj] * ch1)
+                    ur += w0 * (su0 + col_wr[jj] * ch0) + w1 * (su1 + col_wr[jj] * ch1)
+                    up += w0 * (sv0 + col_wp[jj] * ch0) + w1 * (sv1 + col_wp[jj] * ch1)
                 out_r[w, oi] = amp_cp * ur
                 out_p[w, oi] = amp_cp * up
                 continue
