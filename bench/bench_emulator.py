@@ -1,17 +1,31 @@
 """Wake emulator vs direct model, measured side by side (prints numbers; no assertions).
 
-Run: python bench/bench_emulator.py [--npts 3000] [--walkers 32]
+Run: python bench/bench_emulator.py [--npts 3000] [--walkers 32] [--direct-walkers 8]
 
 Rates are point evaluations (walkers x points) per second of *process CPU
 time* (one thread: numba and the direct model are single-threaded here), so
-they are per core even on a shared machine; wall times are printed too.
-Errors are max |emulator - direct| / peak |dv| of the direct model, with the
-direct model evaluated exactly in time (``_N_TIME`` raised above the number
-of points) and, for information, with its default time grid.
+they are per core even on a shared machine; wall times and the load average
+are printed too (other processes still share caches and memory bandwidth).
+
+For each damping option:
+
+* emulator: one vectorised call for ``--walkers`` parameter sets (emcee's
+  ``vectorize`` mode), median of 7 calls after a warm-up;
+* direct: :func:`kinkfit.wake.model.wake_perturbations` as it is in the tree
+  (its default time treatment), walker by walker, on the first
+  ``--direct-walkers`` of the same sets and the same points, after a warm-up
+  call that builds its per-damping skeletons (a fit would rebuild them for
+  every new damping value; the warm call favours the direct model);
+* ratio at equal points and the same sets: the emulator's rate on those
+  ``--direct-walkers`` sets over the direct model's;
+* error: max |emulator - direct| / peak |dv| per set, against the direct model
+  exact in time (``_N_TIME`` raised above the number of points, so that each
+  point is solved at its own time) and against its default.
 """
 
 import argparse
 import math
+import os
 import time
 
 import numpy as np
@@ -23,13 +37,18 @@ from kinkfit.wake.linear import get_sheet_solution
 
 
 def timed(func, *args, repeat=1):
-    c0, w0 = time.process_time(), time.perf_counter()
+    """Result, median CPU seconds and median wall seconds of ``repeat`` calls."""
+    cpu, wall = [], []
     for _ in range(repeat):
+        c0, w0 = time.process_time(), time.perf_counter()
         out = func(*args)
-    return out, (time.process_time() - c0) / repeat, (time.perf_counter() - w0) / repeat
+        cpu.append(time.process_time() - c0)
+        wall.append(time.perf_counter() - w0)
+    return out, float(np.median(cpu)), float(np.median(wall))
 
 
 def walkers(rng, disk, m, kind):
+    """Prior-like parameter sets: Mp/M_th 0.03-3, r_p 90-110 au, any azimuth."""
     amp = 10 ** rng.uniform(math.log10(0.03), math.log10(3.0), m)
     par = dict(mass=amp * disk.aspect_p ** 3 * disk.mstar_msun / MJUP_PER_MSUN,
                radius=rng.uniform(90.0, 110.0, m), azimuth=rng.uniform(-180, 180, m),
@@ -41,13 +60,36 @@ def walkers(rng, disk, m, kind):
     return par
 
 
+def cloud(rng, disk, m, kind):
+    """Posterior-like sets: a walker cloud around one solution (0.5 % in mass, 0.2 au, 0.5 deg)."""
+    par = walkers(rng, disk, 1, kind)
+    out = {k: np.repeat(v, m) for k, v in par.items()}
+    out["mass"] = out["mass"] * (1 + 0.005 * rng.standard_normal(m))
+    out["radius"] = out["radius"] + 0.2 * rng.standard_normal(m)
+    out["azimuth"] = out["azimuth"] + 0.5 * rng.standard_normal(m)
+    for k in ("alpha", "efold"):
+        if k in out:
+            out[k] = out[k] * (1 + 0.02 * rng.standard_normal(m))
+    return out
+
+
+def rel_errors(got, ref):
+    errs = []
+    for i in range(ref[0].shape[0]):
+        peak = max(np.abs(ref[0][i]).max(), np.abs(ref[1][i]).max())
+        errs.append(max(np.abs(got[0][i] - ref[0][i]).max(),
+                        np.abs(got[1][i] - ref[1][i]).max()) / max(peak, 1e-300))
+    return np.array(errs)
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--npts", type=int, default=3000)
     ap.add_argument("--walkers", type=int, default=32)
-    ap.add_argument("--direct-walkers", type=int, default=3)
+    ap.add_argument("--direct-walkers", type=int, default=8)
     args = ap.parse_args()
     rng = np.random.default_rng(5)
+    print("load average at start (1, 5, 15 min): %.2f %.2f %.2f" % os.getloadavg())
 
     _, c, w = timed(get_sheet_solution)
     print(f"linear sheet (other module; solve or cache load): cpu {c:.2f} s, wall {w:.2f} s")
@@ -62,47 +104,49 @@ def main():
     # traced-like points: radii 0.3-2.9 r_p, all azimuths
     r = rng.uniform(30.0, 290.0, args.npts)
     phi = rng.uniform(-np.pi, np.pi, args.npts)
+    n_eval = args.walkers * args.npts
+    md = min(args.direct_walkers, args.walkers)
+    print(f"\n{args.npts} points at r 30-290 au, any azimuth; h/r = 0.1, planet at 90-110 au")
+    print(f"{'damping':8s} {'emulator /s/core':>17s} {'(posterior-like)':>17s} "
+          f"{'direct /s/core':>15s} {'ratio':>7s} {'max err (exact)':>16s} "
+          f"{'max err (default)':>18s}")
+    rows = []
     for kind in ("none", "viscous", "efold"):
         model = em.make_fit_model(disk, kind, method="emulator")
         par = walkers(rng, disk, args.walkers, kind)
-        _, c, w = timed(model, par, r, phi)           # first call: numba compile / load
-        print(f"\n[{kind}] first emulator call (compile or load): cpu {c:.2f} s, wall {w:.2f} s")
-        _, c_emu, w_emu = timed(model, par, r, phi, repeat=5)
-        n_eval = args.walkers * args.npts
-        rate_emu = n_eval / c_emu
-        print(f"  emulator: {args.walkers} walkers x {args.npts} points: cpu {c_emu * 1e3:.1f} ms "
-              f"(wall {w_emu * 1e3:.1f} ms) -> {rate_emu:.3g} point evaluations / s / core")
+        _, c0, _ = timed(model, par, r, phi)           # first call: numba compile / load
+        _, c_emu, w_emu = timed(model, par, r, phi, repeat=7)
+        post = cloud(rng, disk, args.walkers, kind)
+        model(post, r, phi)
+        _, c_post, _ = timed(model, post, r, phi, repeat=7)
+        sub = {k: v[:md] for k, v in par.items()}
+        _, c_sub, _ = timed(model, sub, r, phi, repeat=7)
 
         direct = em.make_fit_model(disk, kind, method="direct")
-        md = args.direct_walkers
-        sub = {k: v[:md] for k, v in par.items()}
         direct(sub, r, phi)                           # skeleton builds
         ref_default, c_dir, w_dir = timed(direct, sub, r, phi)
-        rate_dir = md * args.npts / c_dir
-        print(f"  direct:   {md} walkers x {args.npts} points: cpu {c_dir:.2f} s "
-              f"(wall {w_dir:.2f} s) -> {rate_dir:.3g} point evaluations / s / core")
-        print(f"  ratio emulator / direct (per core, equal points): {rate_emu / rate_dir:.0f}x")
         saved = wm._N_TIME
-        wm._N_TIME = 10 ** 7
+        wm._N_TIME = 10 * args.npts                   # > number of distinct times: exact
         try:
             ref_exact = direct(sub, r, phi)
         finally:
             wm._N_TIME = saved
         got = model(sub, r, phi)
-        for label, ref in (("exact in time", ref_exact), ("default time grid", ref_default)):
-            errs = []
-            for i in range(md):
-                peak = max(np.abs(ref[0][i]).max(), np.abs(ref[1][i]).max())
-                errs.append(max(np.abs(got[0][i] - ref[0][i]).max(),
-                                np.abs(got[1][i] - ref[1][i]).max()) / peak)
-            print(f"  max |emulator - direct ({label})| / peak |dv|: "
-                  + ", ".join(f"{e:.2e}" for e in errs))
-        blend = []
-        for i in range(md):
-            peak = max(np.abs(ref_exact[0][i]).max(), np.abs(ref_exact[1][i]).max())
-            blend.append(np.abs(ref_default[0][i] - ref_exact[0][i]).max() / peak)
-        print("  (direct default grid vs exact, dv_r, same walkers: "
-              + ", ".join(f"{e:.2e}" for e in blend) + ")")
+        e_exact = rel_errors(got, ref_exact)
+        e_default = rel_errors(got, ref_default)
+        rate_emu = n_eval / c_emu
+        rate_post = n_eval / c_post
+        rate_sub = md * args.npts / c_sub
+        rate_dir = md * args.npts / c_dir
+        rows.append((kind, rate_emu, rate_post, rate_dir, rate_sub / rate_dir,
+                     e_exact.max(), e_default.max()))
+        print(f"{kind:8s} {rate_emu:17.3g} {rate_post:17.3g} {rate_dir:15.3g} "
+              f"{rate_sub / rate_dir:6.0f}x {e_exact.max():16.2e} {e_default.max():18.2e}")
+        print(f"         (first call {c0:.2f} s; emulator {c_emu * 1e3:.1f} ms cpu / "
+              f"{w_emu * 1e3:.1f} ms wall for {args.walkers} walkers; on the {md} direct "
+              f"sets {rate_sub:.3g} /s; direct {c_dir:.2f} s cpu / {w_dir:.2f} s wall)")
+    print("load average at end (1, 5, 15 min): %.2f %.2f %.2f" % os.getloadavg())
+    print(f"direct model time grid: _N_TIME = {wm._N_TIME!r} (None = exact at snapped times)")
 
 
 if __name__ == "__main__":
