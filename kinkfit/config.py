@@ -137,6 +137,9 @@ _SCHEMA: dict[str, tuple[_Field, ...]] = {
            doc="residual distribution"),
         _f("dof", _Q, 4.0, unit="", low=1.0,
            doc="degrees of freedom of the student-t option"),
+        _f("kink_model", "choice", "forward", choices=("forward", "first-order"),
+           doc="model kink: the traced peak of the beam-smeared model "
+               "channel (forward) or the first-order shift at the point"),
     ),
     "sampler": (
         _f("walkers", "int", 32, low=4, doc="emcee walkers"),
@@ -279,6 +282,7 @@ class TraceSettings:
 class LikelihoodSettings:
     kind: str
     dof: float
+    kink_model: str = "forward"
 
 
 @dataclass(frozen=True)
@@ -585,7 +589,7 @@ def parse_config(text: str, path: str | Path | None = None) -> KinkfitConfig:
     trace = TraceSettings(tuple(t["surfaces"]), t["min_snr"],
                           t["points_per_beam"], t["debias"])
     lk = _section(raw.get("likelihood", {}), "likelihood", file)
-    likelihood = LikelihoodSettings(lk["kind"], lk["dof"])
+    likelihood = LikelihoodSettings(lk["kind"], lk["dof"], lk["kink_model"])
     s = _section(raw.get("sampler", {}), "sampler", file)
     sampler = SamplerSettings(**s)
     o = _section(raw.get("output", {}), "output", file)

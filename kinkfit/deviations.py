@@ -619,7 +619,102 @@ def estimate_smearing_bias(cube, ridges, fit_or_geom, settings, *,
             "emission": None if emission is None else {
                 k: float(getattr(emission, k)) for k in
                 ("peak_jy_beam", "r_char_au", "gamma", "r_core_au", "r_out_au",
-                 "back_ratio", "v_turb_kms")}}
+                 "back_ratio", "t_ref_k", "r_t_ref_au", "temperature_index",
+                 "molecule_amu", "v_turb_kms")}}
     log.info("beam-smearing bias: rms %.4f arcsec over %d points (%d filled)",
              meta["rms_bias_arcsec"], n, meta["n_filled"])
     return SmearingBias(off, measured, emission, meta)
+
+
+#: free parameters of :func:`fit_emission` (name, lower, upper bound)
+_EMISSION_FREE = (("log_peak", -np.inf, np.inf), ("gamma", 0.0, 3.0),
+                  ("log_r_char", math.log(5.0), math.log(1e4)),
+                  ("back_ratio", 0.0, 1.0),
+                  ("log_t_ref", math.log(0.5), math.log(2e3)),
+                  ("temperature_index", -0.5, 1.5))
+
+#: turbulent width kept fixed (and negligible) by :func:`fit_emission`,
+#: which fits the line width as one power law in radius, km/s
+_FIT_V_TURB = 1e-3
+
+
+def fit_emission(cube, geom, start, *, oversample: int = 2, stride: int = 2,
+                 max_nfev: int = 20):
+    """Fit the emission profile of the background model to the cube.
+
+    The beam-smearing bias and the tracer response
+    (:mod:`kinkfit.response`) depend on the *shape* of the channel
+    emission -- line width, brightness profile, back/front ratio -- more
+    than on the geometry.  Ridge widths and amplitudes
+    (:func:`estimate_emission`) constrain them poorly (no back-surface
+    points when only the front is traced; widths of blended ridges), so the
+    noise-free model cube (:func:`model_cube`) is fitted to the data by
+    least squares over every ``stride``-th pixel of every channel, with the
+    geometry held fixed: ``ln peak, gamma, ln r_char, back_ratio`` and the
+    line width as one power law ``sigma_v = sqrt(k T(r) / m)``, ``T(r) =
+    T_ref (r / 100 au)^-index`` (free ``ln T_ref, index``; thermal and
+    turbulent widths are degenerate in a cube, so the turbulent part is
+    held at a negligible ``_FIT_V_TURB``).  ``scipy.optimize.
+    least_squares``, bounded trust region.  A planet's kinks are local and
+    change few pixels, so they hardly pull this fit.
+
+    Parameters
+    ----------
+    cube : kinkfit.cube.Cube
+    geom : kinkfit.geometry.DiskGeometry
+    start : kinkfit.synth.LineEmission
+        Starting profile (e.g. :func:`estimate_emission`).
+    oversample : int
+        Sub-pixels per axis of the model during the fit.
+    stride : int
+        Pixel stride of the residual sample.
+    max_nfev : int
+        Model-cube evaluations allowed.
+
+    Returns
+    -------
+    kinkfit.synth.LineEmission
+    """
+    from scipy.optimize import least_squares
+    data = np.asarray(cube.data, float)[:, ::stride, ::stride]
+    noise = np.asarray(cube.noise_per_channel, float)
+    noise = np.where(np.isfinite(noise) & (noise > 0), noise,
+                     float(np.nanmedian(noise)) if np.any(np.isfinite(noise))
+                     else 1.0)[:, None, None]
+    good = np.isfinite(data)
+    from .synth import LineEmission
+    # start: the whole width of the starting profile at 100 au as thermal
+    sig100 = float(start.line_sigma_kms(100.0))
+    kt = float(LineEmission(t_ref_k=1.0, v_turb_kms=0.0).line_sigma_kms(
+        100.0)) ** 2
+    t_ref = sig100 ** 2 / kt
+    x0 = np.array([math.log(max(start.peak_jy_beam, 1e-30)),
+                   float(np.clip(start.gamma, 0.0, 3.0)),
+                   math.log(float(np.clip(start.r_char_au, 6.0, 9e3))),
+                   float(np.clip(start.back_ratio, 0.05, 0.95)),
+                   math.log(float(np.clip(t_ref, 1.0, 1.5e3))), 0.4])
+    lo = np.array([b[1] for b in _EMISSION_FREE])
+    hi = np.array([b[2] for b in _EMISSION_FREE])
+    x0 = np.clip(x0, lo + 1e-9, hi - 1e-9)
+
+    def emission_of(p):
+        return replace(start, peak_jy_beam=math.exp(p[0]), gamma=float(p[1]),
+                       r_char_au=math.exp(p[2]), back_ratio=float(p[3]),
+                       t_ref_k=math.exp(p[4]), r_t_ref_au=100.0,
+                       temperature_index=float(p[5]),
+                       v_turb_kms=_FIT_V_TURB)
+
+    def resid(p):
+        mod = model_cube(cube, geom, emission_of(p), oversample=oversample)
+        r = (mod.data[:, ::stride, ::stride] - data) / noise
+        return r[good]
+
+    res = least_squares(resid, x0, bounds=(lo, hi), x_scale="jac",
+                        max_nfev=max_nfev, diff_step=1e-3)
+    out = emission_of(res.x)
+    chi2 = float(np.sum(res.fun ** 2) / max(res.fun.size - res.x.size, 1))
+    log.info("emission fit: %s (reduced chi2 %.3f, %d evaluations)",
+             {k: round(float(getattr(out, k)), 4) for k in
+              ("peak_jy_beam", "gamma", "r_char_au", "back_ratio", "t_ref_k",
+               "temperature_index", "v_turb_kms")}, chi2, res.nfev)
+    return out

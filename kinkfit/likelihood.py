@@ -124,7 +124,15 @@ class KinkLikelihood:
     def __init__(self, r_au, phi_rad, a_r, a_phi, grad_kms_per_arcsec,
                  offset_arcsec, sigma_arcsec, model: ModelFn | None,
                  param_set: ParameterSet, *, kind: str = "gaussian",
-                 dof: float = 4.0, channel=None):
+                 dof: float = 4.0, channel=None, response=None):
+        if response is not None:
+            # the forward-modelled tracer (kinkfit.response): the data are
+            # the kinks relative to the background model's own smeared ridge
+            if response.n_points != np.size(r_au):
+                raise KinkfitError(f"ridge response has {response.n_points} "
+                                   f"points, the data {np.size(r_au)}",
+                                   key="response")
+            offset_arcsec = response.observed
         arrays = {"r_au": r_au, "phi_rad": phi_rad, "a_r": a_r,
                   "a_phi": a_phi, "grad_kms_per_arcsec": grad_kms_per_arcsec,
                   "offset_arcsec": offset_arcsec,
@@ -165,6 +173,7 @@ class KinkLikelihood:
                         else np.array(channel, dtype=int).ravel())
         self.model = null_model if model is None else model
         self.is_baseline = model is None
+        self.response = response
         self.param_set = param_set
         self.kind = kind
         self.dof = float(dof)
@@ -195,9 +204,18 @@ class KinkLikelihood:
 
     # ----------------------------------------------------------- model ---
     def _model_offsets(self, params: dict) -> np.ndarray:
+        m = len(next(iter(params.values())))
+        if self.response is not None:
+            if self.is_baseline:
+                return np.zeros((m, self.npts))
+            resp = self.response
+            dv_r, dv_phi = self.model(params, resp.node_r_au,
+                                      resp.node_phi_rad)
+            dv_los = (np.asarray(dv_r, float) * resp.node_a_r
+                      + np.asarray(dv_phi, float) * resp.node_a_phi)
+            return resp.offsets(dv_los)
         dv_r, dv_phi = self.model(params, self.data["r_au"],
                                   self.data["phi_rad"])
-        m = len(next(iter(params.values())))
         dv_r = np.asarray(dv_r, dtype=float)
         dv_phi = np.asarray(dv_phi, dtype=float)
         if dv_r.shape != (m, self.npts) or dv_phi.shape != (m, self.npts):

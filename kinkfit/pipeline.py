@@ -125,7 +125,7 @@ def _matches(path: Path, cfg: KinkfitConfig, cube_sha: str, name: str):
 def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
                    folder: Path, cube_path: str, cube_sha: str,
                    background=None, truths=None, force=False, resume=True,
-                   workers=None, progress=None):
+                   workers=None, progress=None, response=None):
     """Sample the posterior of one assumption and write its result.
 
     Parameters
@@ -170,7 +170,7 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
         model = None
     like = KinkLikelihood.from_deviations(
         deviations, model, pset, kind=cfg.likelihood.kind,
-        dof=cfg.likelihood.dof)
+        dof=cfg.likelihood.dof, response=response)
     settings = cfg.sampler
     if workers is not None or progress is not None:
         settings = replace(settings,
@@ -212,6 +212,51 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
     log.info("%s: %d steps in %.1f s, converged=%s", path.name,
              outcome.n_steps, time.perf_counter() - t0, outcome.converged)
     return path, result, status
+
+
+def forward_response(cube, ridges, geometry, deviations):
+    """Tracer response of the traced points, and the deviations it implies.
+
+    The emission profile is the one the bias model used (stored in
+    ``deviations.meta['bias']['emission']``; fitted to the cube when
+    missing).  Nodes are every ``k``-th pixel, ``k = floor(2 sigma_minor /
+    pixel)`` (at least 1), ``sigma_minor`` the smallest beam sigma.  The
+    returned deviations carry the response's own debiased offsets
+    (``offset_arcsec = kappa (s_data - s_0)``, see :mod:`kinkfit.response`),
+    so that plots, tables and the likelihood show the same kinks.
+
+    Returns
+    -------
+    response : kinkfit.response.RidgeResponse
+    deviations : kinkfit.deviations.Deviations
+    """
+    import math
+    from dataclasses import replace as dc_replace
+
+    from .deviations import estimate_emission, fit_emission
+    from .response import build_ridge_response
+    from .synth import LineEmission
+
+    spec = (deviations.meta.get("bias") or {}).get("emission")
+    if spec:
+        emission = LineEmission(**{k: float(v) for k, v in spec.items()})
+    else:
+        emission = fit_emission(cube, geometry,
+                                estimate_emission(ridges, geometry, cube))
+    sig_min = float(np.min(cube.beam_minor_arcsec)) / (
+        2.0 * math.sqrt(2.0 * math.log(2.0)))
+    stride = max(1, int(math.floor(2.0 * sig_min / float(cube.pixel_arcsec))))
+    response = build_ridge_response(cube, ridges, geometry, emission,
+                                    node_stride=stride)
+    observed = response.observed
+    bias = deviations.offset_raw_arcsec - observed
+    dev = dc_replace(
+        deviations, offset_arcsec=observed, bias_arcsec=bias,
+        distance_arcsec=deviations.distance_arcsec
+        + deviations.bias_arcsec - bias,
+        meta={**deviations.meta, "kink_model": "forward",
+              "response": dict(response.meta)})
+    return response, dev
 
 
 def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
@@ -262,6 +307,10 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
         log.info("%s: traced data of this config and cube reused",
                  trace_file.name)
     geometry = fit.geometry if fit is not None else cfg.geometry()
+    response = None
+    if cfg.likelihood.kink_model == "forward":
+        response, deviations = forward_response(cube, ridges, geometry,
+                                                deviations)
 
     run = FitRun(output_folder=folder, trace_file=trace_file)
     names = list(cfg.wake.damping) + ([BASELINE] if cfg.wake.baseline else [])
@@ -271,7 +320,7 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
             cfg, deviations, geometry, name, folder=folder,
             cube_path=str(cfg.data.cube), cube_sha=cube_sha, background=fit,
             truths=truths, force=force, resume=resume, workers=workers,
-            progress=progress)
+            progress=progress, response=response)
         run.results[name] = path
         run.converged[name] = bool(res.converged)
         run.status[name] = status

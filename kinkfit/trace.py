@@ -743,6 +743,11 @@ def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
        geometry (:func:`kinkfit.deviations.estimate_smearing_bias`; the
        emission profile is estimated once, in the first round) -- without
        it the blended front/back ridges pull the fitted layer height down;
+       with ``likelihood.kink_model = "forward"`` the emission profile of
+       that model (line width, brightness, back/front ratio) is fitted to
+       the cube (:func:`kinkfit.deviations.fit_emission`) at the start
+       geometry and refitted once at the first fitted one, instead of being
+       matched to the ridge widths;
     3. re-estimate the bias of the final points at the final geometry;
     4. measure the deviations against the fitted disk with the bias removed
        (:func:`kinkfit.deviations.measure_deviations`).
@@ -765,7 +770,8 @@ def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
     deviations : kinkfit.deviations.Deviations
         ``deviations.meta['bias']`` describes the bias correction.
     """
-    from .deviations import estimate_smearing_bias, measure_deviations
+    from .deviations import (estimate_emission, estimate_smearing_bias,
+                             fit_emission, measure_deviations)
     from .diskfit import trace_and_fit
     if cube is None:
         cube = load_cube(cfg)
@@ -773,10 +779,30 @@ def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
     settings = cfg.trace
     do_fit = cfg.disk.fit_background if fit_background is None else fit_background
     state = {"emission": None, "bias": None}
+    lk = getattr(cfg, "likelihood", None)
+    fit_profile = getattr(lk, "kink_model", "first-order") == "forward"
+
+    def emission_for(ridges, geom):
+        # the forward kink model needs the emission profile itself, not only
+        # a bias: fit it to the cube at the start geometry, and once more at
+        # the first fitted geometry (a profile fitted at a wrong geometry
+        # absorbs the geometry's error and biases the next fits)
+        if not fit_profile or len(ridges) < 5:
+            return state["emission"]
+        if state["emission"] is None:
+            state["emission"] = fit_emission(
+                cube, geom, estimate_emission(ridges, geom, cube))
+            state["emission_geom"] = geom
+        elif state.get("refits", 0) < 1 and geom != state["emission_geom"]:
+            state["emission"] = fit_emission(cube, geom, state["emission"],
+                                             max_nfev=10)
+            state["emission_geom"] = geom
+            state["refits"] = 1
+        return state["emission"]
 
     def bias_of(ridges, geom):
         b = estimate_smearing_bias(cube, ridges, geom, settings,
-                                   emission=state["emission"])
+                                   emission=emission_for(ridges, geom))
         state["emission"], state["bias"] = b.emission, b
         return b.offset_arcsec
 
@@ -796,7 +822,7 @@ def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
     if settings.debias:
         # bias of the final ridges at the final geometry
         bias = estimate_smearing_bias(cube, ridges, geom, settings,
-                                      emission=state["emission"])
+                                      emission=emission_for(ridges, geom))
     dev = measure_deviations(ridges, fit if fit is not None else geom, bias=bias)
     dev.meta["geometry"] = _geom_dict(geom)
     dev.meta["cube_sha256"] = cube.provenance.get("sha256", "")

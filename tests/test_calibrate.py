@@ -42,6 +42,8 @@ azimuth = { prior = "uniform", low = "-90 deg", high = "90 deg" }
 jitter = { prior = "log-uniform", low = "0.001 arcsec", high = "0.05 arcsec" }
 [trace]
 min_snr = 4.0
+[likelihood]
+kink_model = "first-order"
 [sampler]
 walkers = 10
 max_steps = 40

@@ -43,6 +43,8 @@ azimuth = {{ prior = "uniform", low = "-180 deg", high = "180 deg" }}
 jitter = {{ prior = "log-uniform", low = "0.001 arcsec", high = "0.1 arcsec" }}
 [trace]
 min_snr = 4.0
+[likelihood]
+kink_model = "{kink_model}"
 [sampler]
 walkers = 16
 max_steps = {steps}
@@ -75,8 +77,11 @@ damping = "none"
 
 
 def _config(tmp_path, **kw):
+    # mechanics tests use the cheap first-order kink model; the forward
+    # model (the default of a user's config) is exercised where named
     values = dict(inc=40, pa=60, rotation="counterclockwise", steps=2500,
-                  seed=3, snr=50, mass=2.0, radius=100, azimuth=40)
+                  seed=3, snr=50, mass=2.0, radius=100, azimuth=40,
+                  kink_model="first-order")
     values.update(kw)
     path = tmp_path / "disk.toml"
     path.write_text(CONFIG.format(**values))
@@ -137,8 +142,10 @@ def test_fit_cli_writes_every_product_and_report_checks_the_cube(tmp_path, capsy
     `kinkfit report RESULT --cube OTHER` refuses a cube whose SHA-256 differs
     from the recorded one (provenance contract)."""
     from kinkfit.cli import main
+    # the default (forward) kink model, end to end through the CLI
     text = CONFIG.format(inc=40, pa=60, rotation="counterclockwise", steps=60,
-                         seed=3, snr=50, mass=2.0, radius=100, azimuth=40)
+                         seed=3, snr=50, mass=2.0, radius=100, azimuth=40,
+                         kink_model="forward")
     text = text.replace("baseline = false", "baseline = true")
     path = tmp_path / "disk.toml"
     path.write_text(text)
