@@ -200,6 +200,28 @@ def test_vectorised_walkers_equal_single_calls(small_model, rng):
         np.testing.assert_array_equal(sp[0], vp[i])
 
 
+def test_point_cache_follows_the_points(small_model, rng):
+    # the per-point arrays are kept between calls with the same points; new points,
+    # or the caller's array changed in place, must not reuse them (reference: a
+    # fresh model object, which has no cache)
+    disk, model = small_model
+    r = rng.uniform(25, 290, 500)
+    phi = rng.uniform(-np.pi, np.pi, 500)
+    par = _walkers(disk, 3, rng)
+    first = model(par, r, phi)
+    np.testing.assert_array_equal(model(par, r, phi)[0], first[0])
+    r[:250] = rng.uniform(25, 290, 250)                 # same array object, new values
+    fresh = em.EmulatorModel(disk, "viscous", tables=model.tables)
+    for a, b in zip(model(par, r, phi), fresh(par, r, phi)):
+        np.testing.assert_array_equal(a, b)
+    assert not np.array_equal(model(par, r, phi)[0], first[0])
+    r2, phi2 = r[:100].copy(), phi[:100].copy()        # fewer points
+    for a, b in zip(model(par, r2, phi2), fresh(par, r2, phi2)):
+        np.testing.assert_array_equal(a, b)
+    with pytest.raises(KinkfitError):
+        model(par, r, phi[:10])
+
+
 def test_pickle_round_trip(small_model, rng):
     # multiprocessing.Pool ships the model to workers (DEVELOPERS.md: picklable)
     disk, model = small_model
