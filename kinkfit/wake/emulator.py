@@ -391,8 +391,8 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
     Same node semantics as :func:`kinkfit.wake.burgers.burgers_nodes` (hull
     vertices at ``y + chi0 tau``, clipped at equal-area shocks, linear between).
     ``g`` is the node list live at ``tau`` (:func:`_node_of`); ``hint`` (or -1)
-    a list position known to lie at or left of the bracket.  Returns the value
-    and the bracket's list position.
+    a list position near the bracket (galloping from it, then bisection).  Returns the value and the bracket's list
+    position (-1 outside the support).
     """
     base = s_off[p]
     # outside the Hopf-Lax bound of the support the zero state wins
@@ -407,13 +407,37 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
         return 0.0, -1
     lo = a0
     hi = a1
-    if hint >= a0:
-        lo = hint
-        hi = hint + 4 if hint + 4 < a1 else a1
-        j = base + h_idx[hi]
-        if y[j] + c[j] * tau <= eta:
-            lo = hi
-            hi = a1
+    if a0 <= hint < a1:
+        jh = base + h_idx[hint]
+        if y[jh] + c[jh] * tau <= eta:
+            # gallop right from a position known to lie at or left of the bracket
+            lo = hint
+            step = 2
+            while True:
+                nx = lo + step
+                if nx >= a1:
+                    break
+                jn = base + h_idx[nx]
+                if y[jn] + c[jn] * tau <= eta:
+                    lo = nx
+                    step *= 2
+                else:
+                    hi = nx
+                    break
+        else:
+            # gallop left until a characteristic at or left of eta
+            hi = hint
+            step = 2
+            while True:
+                nx = hi - step
+                if nx <= a0:
+                    break
+                jn = base + h_idx[nx]
+                if y[jn] + c[jn] * tau <= eta:
+                    lo = nx
+                    break
+                hi = nx
+                step *= 2
     # branch-free bisection for the last list position with y + chi0 tau <= eta
     span = hi - lo + 1
     while span > 1:
@@ -441,6 +465,8 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
     return _stream(p, eta, tau, g, h_idx[lo], y, c, u0, death, s_off, h_idx, h_off), lo
 
 
+#: width in ln r of the radius bins of the exterior pass
+_EXT_BIN = 0.02
 #: members scanned by :func:`_eval_local` before it falls back to bisection
 _SCAN_MAX = 24
 
@@ -910,7 +936,7 @@ def _clock(bet, kmax, rate, ld, du, t_buf, e_buf, t_und):  # pragma: no cover
 
 
 @njit(cache=True)
-def _kernel(order, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, beta, a, q, p, gam,
+def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, beta, a, q, p, gam,
             xm, u_out, du_out, idu_out, rate_out, ld_out, t0_out,
             u_in, du_in, idu_in, rate_in, ld_in, t0_in,
             res_eta, res_u, res_v, res_off,
@@ -1003,142 +1029,167 @@ def _kernel(order, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, beta, a, 
                 if g_c[j] < 0:
                     return 1
         amp_cp = A * cpw
-        for i in range(npts):
-            oi = order[i]
-            out_r[w, oi] = 0.0
-            out_p[w, oi] = 0.0
-            if not inside[i]:
-                continue
-            x = r[i] * irp
-            xh = (x - 1.0) * ia
-            sg = 1.0 if x > 1.0 else (-1.0 if x < 1.0 else 0.0)
-            # R02 locus phase (closed form, powers of x as products)
-            if log_b:
-                ph = (pw[0, i] * f1 - 1.0) * i1q - (pw[1, i] - f2)
-            else:
-                ph = (pw[0, i] * f1 - 1.0) * i1q - (pw[1, i] * f2 - 1.0) * ib
-            dphi = _wrap(phi[i] - (ppw - sg * ph * ia))
-            if abs(xh) <= xm:
-                # interior: bilinear on (column, s) of the steepened sheet
-                if xh < xh0 or xh > xh_last:
+        # interior points in radius order (sheet columns in turn), exterior points
+        # in (radius bin, azimuth) order: their eta then increases along a bin and
+        # each Burgers bracket is galloped to from the previous one
+        hg0 = -1
+        hp0 = -1
+        hg1 = -1
+        hp1 = -1
+        for pas in range(2):
+            for ii in range(npts):
+                i = ii if pas == 0 else eperm[ii]
+                oi = order[i]
+                if pas == 0:
+                    out_r[w, oi] = 0.0
+                    out_p[w, oi] = 0.0
+                if not inside[i]:
                     continue
-                sh = dphi * ia
-                if sh < s0 or sh > s_last:
+                x = r[i] * irp
+                xh = (x - 1.0) * ia
+                if (abs(xh) <= xm) != (pas == 0):
                     continue
-                j = int((xh - xh0) * idxc)
-                if j > nc - 2:
-                    j = nc - 2
-                wx = (xh - col_xh[j]) / (col_xh[j + 1] - col_xh[j])
-                k = int((sh - s0) * ids)
-                if k > ns - 2:
-                    k = ns - 2
-                ws = (sh - s_grid[k]) / (s_grid[k + 1] - s_grid[k])
-                # sheet values of the cell read first: their cache misses overlap
-                # with the Burgers look-ups below
-                a00 = lin[j, k, 0]
-                a01 = lin[j, k, 1]
-                a02 = lin[j, k, 2]
-                a10 = lin[j, k + 1, 0]
-                a11 = lin[j, k + 1, 1]
-                a12 = lin[j, k + 1, 2]
-                b00 = lin[j + 1, k, 0]
-                b01 = lin[j + 1, k, 1]
-                b02 = lin[j + 1, k, 2]
-                b10 = lin[j + 1, k + 1, 0]
-                b11 = lin[j + 1, k + 1, 1]
-                b12 = lin[j + 1, k + 1, 2]
-                ur = 0.0
-                up = 0.0
-                for dj in range(2):
-                    jj = j + dj
-                    wj = wx if dj == 1 else 1.0 - wx
-                    if wj == 0.0:
-                        continue
-                    if dj == 0:
-                        sf0, su0, sv0, sf1, su1, sv1 = a02, a00, a01, a12, a10, a11
-                    else:
-                        sf0, su0, sv0, sf1, su1, sv1 = b02, b00, b01, b12, b10, b11
-                    # the two s nodes, in increasing eta (eta = -s on the inner side)
-                    ch0 = 0.0
-                    ch1 = 0.0
-                    if g_c[jj] > 0:
-                        pj = col_prof[jj]
-                        # s node k is profile sample col_first + k (reversed for x < 0)
-                        if col_xh[jj] > 0:
-                            v0, jb = _eval_local(pj, s_grid[k], tau_c[jj], g_c[jj],
-                                                 col_first[jj] + k, iy, ic, iu, idd, iss,
-                                                 inn, ih, iho, isup)
-                            v1, jb = _eval_local(pj, s_grid[k + 1], tau_c[jj], g_c[jj], jb + 1,
-                                                 iy, ic, iu, idd, iss, inn, ih, iho, isup)
-                        else:
-                            v1, jb = _eval_local(pj, -s_grid[k + 1], tau_c[jj], g_c[jj],
-                                                 col_first[jj] + ns - 2 - k, iy, ic, iu, idd,
-                                                 iss, inn, ih, iho, isup)
-                            v0, jb = _eval_local(pj, -s_grid[k], tau_c[jj], g_c[jj], jb + 1,
-                                                 iy, ic, iu, idd, iss, inn, ih, iho, isup)
-                        ch0 = col_g[jj] * (v0 - sf0)
-                        ch1 = col_g[jj] * (v1 - sf1)
-                    w0 = wj * (1.0 - ws) * d_c[jj]
-                    w1 = wj * ws * d_c[jj]
-                    ur += w0 * (su0 + col_wr[jj] * ch0) + w1 * (su1 + col_wr[jj] * ch1)
-                    up += w0 * (sv0 + col_wp[jj] * ch0) + w1 * (sv1 + col_wp[jj] * ch1)
-                out_r[w, oi] = amp_cp * ur
-                out_p[w, oi] = amp_cp * up
-                continue
-            uu = abs(x - 1.0)
-            if xh > 0:
-                k, wk = _grid_cell(uu, iumax_out, n, u_out, idu_out)
-                tt = t_out[k] + wk * (t_out[k + 1] - t_out[k])
-                prof = 0
-                dmatch = dm_out
-            else:
-                k, wk = _grid_cell(uu, iumax_in, n, u_in, idu_in)
-                tt = t_in[k] + wk * (t_in[k + 1] - t_in[k])
-                prof = 1
-                dmatch = dm_in
-            eta = sg * dphi * ia
-            chi = 0.0
-            if tt > 0.0:
-                ge = _node_of(prof, A * tt, en, et)
-                if ge < 0:
-                    return 1
-                chi = _eval_at(prof, eta, A * tt, ge, -1, ey, ec, eu, ed, es, eh, eho, esup)[0]
-            # non-wave residual of the sheet, tapered off by 2 x_match
-            wt = (uu * ia - xm) / xm
-            if wt < 0.0:
-                wt = 0.0
-            res_w = 0.0
-            i0 = res_off[prof]
-            i1 = res_off[prof + 1]
-            if wt < 1.0 and res_eta[i0] <= eta <= res_eta[i1 - 1]:
-                res_w = A * dmatch * 0.5 * (1.0 + math.cos(math.pi * wt))
-            if chi == 0.0 and res_w == 0.0:
-                continue
-            rr = 0.0
-            rv = 0.0
-            if res_w != 0.0:
-                # uniform eta grid of the matching profile (checked at build)
-                fk = (eta - res_eta[i0]) / (res_eta[i0 + 1] - res_eta[i0])
-                kk = i0 + int(fk)
-                if kk > i1 - 2:
-                    kk = i1 - 2
-                wr = (eta - res_eta[kk]) / (res_eta[kk + 1] - res_eta[kk])
-                rr = res_u[kk] + wr * (res_u[kk + 1] - res_u[kk])
-                rv = res_v[kk] + wr * (res_v[kk + 1] - res_v[kk])
-            dd = 1.0
-            if bet != 0.0:
-                if prof == 0:
-                    dd = math.exp(bet * (ld_out[k] + wk * (ld_out[k + 1] - ld_out[k])))
+                sg = 1.0 if x > 1.0 else (-1.0 if x < 1.0 else 0.0)
+                # R02 locus phase (closed form, powers of x as products)
+                if log_b:
+                    ph = (pw[0, i] * f1 - 1.0) * i1q - (pw[1, i] - f2)
                 else:
-                    dd = math.exp(bet * (ld_in[k] + wk * (ld_in[k + 1] - ld_in[k])))
-            shear = abs(pw[2, i] * f15 - 1.0)
-            g = math.sqrt((2.0 / 3.0) * shear * pw[3, i] * fg * ia)
-            sigma = ksig * g * dd * A * chi
-            xq = pw[4, i] * fq
-            mach = x * shear / (xq * a)
-            norm = math.sqrt(1.0 + mach * mach)
-            out_r[w, oi] = cpw * (xq * sg * mach / norm * sigma + res_w * rr)
-            out_p[w, oi] = cpw * (xq * sg / norm * sigma + res_w * rv)
+                    ph = (pw[0, i] * f1 - 1.0) * i1q - (pw[1, i] * f2 - 1.0) * ib
+                dphi = _wrap(phi[i] - (ppw - sg * ph * ia))
+                if abs(xh) <= xm:
+                    # interior: bilinear on (column, s) of the steepened sheet
+                    if xh < xh0 or xh > xh_last:
+                        continue
+                    sh = dphi * ia
+                    if sh < s0 or sh > s_last:
+                        continue
+                    j = int((xh - xh0) * idxc)
+                    if j > nc - 2:
+                        j = nc - 2
+                    wx = (xh - col_xh[j]) / (col_xh[j + 1] - col_xh[j])
+                    k = int((sh - s0) * ids)
+                    if k > ns - 2:
+                        k = ns - 2
+                    ws = (sh - s_grid[k]) / (s_grid[k + 1] - s_grid[k])
+                    # sheet values of the cell read first: their cache misses overlap
+                    # with the Burgers look-ups below
+                    a00 = lin[j, k, 0]
+                    a01 = lin[j, k, 1]
+                    a02 = lin[j, k, 2]
+                    a10 = lin[j, k + 1, 0]
+                    a11 = lin[j, k + 1, 1]
+                    a12 = lin[j, k + 1, 2]
+                    b00 = lin[j + 1, k, 0]
+                    b01 = lin[j + 1, k, 1]
+                    b02 = lin[j + 1, k, 2]
+                    b10 = lin[j + 1, k + 1, 0]
+                    b11 = lin[j + 1, k + 1, 1]
+                    b12 = lin[j + 1, k + 1, 2]
+                    ur = 0.0
+                    up = 0.0
+                    for dj in range(2):
+                        jj = j + dj
+                        wj = wx if dj == 1 else 1.0 - wx
+                        if wj == 0.0:
+                            continue
+                        if dj == 0:
+                            sf0, su0, sv0, sf1, su1, sv1 = a02, a00, a01, a12, a10, a11
+                        else:
+                            sf0, su0, sv0, sf1, su1, sv1 = b02, b00, b01, b12, b10, b11
+                        # the two s nodes, in increasing eta (eta = -s on the inner side)
+                        ch0 = 0.0
+                        ch1 = 0.0
+                        if g_c[jj] > 0:
+                            pj = col_prof[jj]
+                            # s node k is profile sample col_first + k (reversed for x < 0)
+                            if col_xh[jj] > 0:
+                                v0, jb = _eval_local(pj, s_grid[k], tau_c[jj], g_c[jj],
+                                                     col_first[jj] + k, iy, ic, iu, idd, iss,
+                                                     inn, ih, iho, isup)
+                                v1, jb = _eval_local(pj, s_grid[k + 1], tau_c[jj], g_c[jj], jb + 1,
+                                                     iy, ic, iu, idd, iss, inn, ih, iho, isup)
+                            else:
+                                v1, jb = _eval_local(pj, -s_grid[k + 1], tau_c[jj], g_c[jj],
+                                                     col_first[jj] + ns - 2 - k, iy, ic, iu, idd,
+                                                     iss, inn, ih, iho, isup)
+                                v0, jb = _eval_local(pj, -s_grid[k], tau_c[jj], g_c[jj], jb + 1,
+                                                     iy, ic, iu, idd, iss, inn, ih, iho, isup)
+                            ch0 = col_g[jj] * (v0 - sf0)
+                            ch1 = col_g[jj] * (v1 - sf1)
+                        w0 = wj * (1.0 - ws) * d_c[jj]
+                        w1 = wj * ws * d_c[jj]
+                        ur += w0 * (su0 + col_wr[jj] * ch0) + w1 * (su1 + col_wr[jj] * ch1)
+                        up += w0 * (sv0 + col_wp[jj] * ch0) + w1 * (sv1 + col_wp[jj] * ch1)
+                    out_r[w, oi] = amp_cp * ur
+                    out_p[w, oi] = amp_cp * up
+                    continue
+                uu = abs(x - 1.0)
+                if xh > 0:
+                    k, wk = _grid_cell(uu, iumax_out, n, u_out, idu_out)
+                    tt = t_out[k] + wk * (t_out[k + 1] - t_out[k])
+                    prof = 0
+                    dmatch = dm_out
+                else:
+                    k, wk = _grid_cell(uu, iumax_in, n, u_in, idu_in)
+                    tt = t_in[k] + wk * (t_in[k + 1] - t_in[k])
+                    prof = 1
+                    dmatch = dm_in
+                eta = sg * dphi * ia
+                chi = 0.0
+                if tt > 0.0:
+                    ge = _node_of(prof, A * tt, en, et)
+                    if ge < 0:
+                        return 1
+                    hint = -1
+                    if prof == 0 and ge == hg0:
+                        hint = hp0
+                    elif prof == 1 and ge == hg1:
+                        hint = hp1
+                    chi, lo = _eval_at(prof, eta, A * tt, ge, hint, ey, ec, eu, ed, es, eh, eho,
+                                       esup)
+                    if lo >= 0:
+                        if prof == 0:
+                            hg0 = ge
+                            hp0 = lo
+                        else:
+                            hg1 = ge
+                            hp1 = lo
+                # non-wave residual of the sheet, tapered off by 2 x_match
+                wt = (uu * ia - xm) / xm
+                if wt < 0.0:
+                    wt = 0.0
+                res_w = 0.0
+                i0 = res_off[prof]
+                i1 = res_off[prof + 1]
+                if wt < 1.0 and res_eta[i0] <= eta <= res_eta[i1 - 1]:
+                    res_w = A * dmatch * 0.5 * (1.0 + math.cos(math.pi * wt))
+                if chi == 0.0 and res_w == 0.0:
+                    continue
+                rr = 0.0
+                rv = 0.0
+                if res_w != 0.0:
+                    # uniform eta grid of the matching profile (checked at build)
+                    fk = (eta - res_eta[i0]) / (res_eta[i0 + 1] - res_eta[i0])
+                    kk = i0 + int(fk)
+                    if kk > i1 - 2:
+                        kk = i1 - 2
+                    wr = (eta - res_eta[kk]) / (res_eta[kk + 1] - res_eta[kk])
+                    rr = res_u[kk] + wr * (res_u[kk + 1] - res_u[kk])
+                    rv = res_v[kk] + wr * (res_v[kk + 1] - res_v[kk])
+                dd = 1.0
+                if bet != 0.0:
+                    if prof == 0:
+                        dd = math.exp(bet * (ld_out[k] + wk * (ld_out[k + 1] - ld_out[k])))
+                    else:
+                        dd = math.exp(bet * (ld_in[k] + wk * (ld_in[k + 1] - ld_in[k])))
+                shear = abs(pw[2, i] * f15 - 1.0)
+                g = math.sqrt((2.0 / 3.0) * shear * pw[3, i] * fg * ia)
+                sigma = ksig * g * dd * A * chi
+                xq = pw[4, i] * fq
+                mach = x * shear / (xq * a)
+                norm = math.sqrt(1.0 + mach * mach)
+                out_r[w, oi] = cpw * (xq * sg * mach / norm * sigma + res_w * rr)
+                out_p[w, oi] = cpw * (xq * sg / norm * sigma + res_w * rv)
     return 0
 
 
@@ -1251,7 +1302,10 @@ class EmulatorModel:
         second = np.log(rr) if abs(q - 0.5) < 1e-12 else rr ** (q - 0.5)
         pw = np.ascontiguousarray(np.stack([rr ** (1.0 + q), second, rr ** -1.5,
                                             rr ** (pp + 3.0 * q - 1.0), rr ** -q]))
-        c = dict(r=r.copy(), phi=phi.copy(), order=order.astype(np.int64),
+        # exterior pass order: bins of 2 % in radius, azimuth within a bin
+        rbin = np.floor(np.log(rr) / _EXT_BIN)
+        eperm = np.lexsort((np.where(inside, ps, 0.0), rbin)).astype(np.int64)
+        c = dict(r=r.copy(), phi=phi.copy(), order=order.astype(np.int64), eperm=eperm,
                  rs=np.ascontiguousarray(rr), ps=np.ascontiguousarray(np.where(inside, ps, 0.0)),
                  inside=inside, pw=pw, any=bool(inside.any()),
                  r_lo=float(rr[inside].min()) if inside.any() else 1.0,
@@ -1278,7 +1332,7 @@ class EmulatorModel:
         self._cover(c["r_lo"], c["r_hi"], rp)
         t = self.tables
         e, ii = t.ext, t.inn
-        code = _kernel(c["order"], c["rs"], c["ps"], c["inside"], c["pw"], c["r_lo"],
+        code = _kernel(c["order"], c["eperm"], c["rs"], c["ps"], c["inside"], c["pw"], c["r_lo"],
                        c["r_hi"], amp, rp, az, cp, beta, t.a, t.q, t.p, t.gamma, t.xm,
                        t.u_out, t.du_out, t.idu_out, t.rate_out, t.ld_out, t.t0_out,
                        t.u_in, t.du_in, t.idu_in, t.rate_in, t.ld_in, t.t0_in,
