@@ -1273,7 +1273,8 @@ class EmulatorModel:
         else:
             beta = np.zeros(m)
         cp = disk.aspect_p * np.asarray(keplerian_speed_kms(rp, disk.mstar_msun), dtype=float)
-        return amp, rp, az, cp, np.ascontiguousarray(beta, dtype=float)
+        return (np.ascontiguousarray(amp), np.ascontiguousarray(rp), np.ascontiguousarray(az),
+                np.ascontiguousarray(cp), np.ascontiguousarray(beta, dtype=float))
 
     def _points(self, r_au, phi_rad):
         """Walker-independent per-point arrays, kept while the caller passes the same points.
