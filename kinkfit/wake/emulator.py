@@ -38,7 +38,14 @@ once, using the structure of the theory instead of a black-box fit
 * Radius and azimuth.  The tables are in ``x = r/r_p``; ``c_p ∝ r_p^(-1/2)``
   (Keplerian) scales the velocities and ``phi_p`` shifts the locus.
 
-The point loop is compiled with numba.  The reference in tests is the direct
+The point loop is compiled with numba (one core; layout and measured profile in
+``docs/physics/emulator.md`` §5a): per-point powers of ``r`` cached while the
+caller passes the same points, so the loop calls no transcendental function but
+``sqrt`` (and ``exp`` for damped on-wake points); interior points in radius
+order with a local search of the column's own samples; exterior points in
+(radius bin, azimuth) order, galloping from the previous bracket; table
+look-ups compiled without NRT (no reference counting per call).  The
+reference in tests is the direct
 model itself, evaluated exactly in time (``kinkfit.wake.model._N_TIME`` raised
 above the number of points, so that :func:`~kinkfit.wake.burgers.burgers_at_times`
 solves at each point's own time instead of blending between grid times).
