@@ -472,6 +472,8 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
     return _stream(p, eta, tau, g, h_idx[lo], y, c, u0, death, s_off, h_idx, h_off), lo
 
 
+#: points per block of the kernel (all walkers on a block before the next)
+_PT_BLOCK = 128
 #: width in ln r of the radius bins of the exterior pass
 _EXT_BIN = 0.02
 #: members scanned by :func:`_eval_local` before it falls back to bisection
@@ -976,12 +978,17 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
     xh_last = col_xh[nc - 1]
     idxc = (nc - 1) / (col_xh[nc - 1] - col_xh[0])
     ia = 1.0 / a
-    t_bo = np.empty(n)
-    t_bi = np.empty(n)
     e_b = np.empty(n)
-    tau_c = np.empty(nc)
-    d_c = np.empty(nc)
-    g_c = np.zeros(nc, dtype=np.int64)
+    t_b = np.empty(n)
+    # per-walker state, computed first: scalars, clocks, interior columns, hints
+    WS = np.zeros((m, 12))
+    T_O = np.empty((m, n))
+    T_I = np.empty((m, n))
+    TAU = np.empty((m, nc))
+    DC = np.empty((m, nc))
+    GC = np.zeros((m, nc), dtype=np.int64)
+    HG = np.full((m, 2), -1, dtype=np.int64)
+    HP = np.full((m, 2), -1, dtype=np.int64)
     c2 = 0.5 * (gam + 1.0)
     b = q - 0.5
     log_b = abs(b) < 1e-12
@@ -993,9 +1000,6 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
     for w in range(m):
         A = amp[w]
         if A == 0.0:
-            for i in range(npts):
-                out_r[w, order[i]] = 0.0
-                out_p[w, order[i]] = 0.0
             continue
         bet = beta[w]
         rpw = rp[w]
@@ -1005,8 +1009,6 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
         f15 = rpw ** 1.5
         fg = rpw ** -pg
         fq = rpw ** q
-        ppw = phi_p[w]
-        cpw = cp[w]
         # damped clocks t' = ∫ D dt, only as far out as the points (and columns) need
         uo = max(r_hi * irp - 1.0, umatch)
         ui = max(1.0 - r_lo * irp, umatch)
@@ -1014,8 +1016,12 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
             return 2
         ko = min(n - 1, int(math.sqrt(uo * iumax_out) * (n - 1)) + 2)
         ki = min(n - 1, int(math.sqrt(ui * iumax_in) * (n - 1)) + 2)
-        t_out = _clock(bet, ko, rate_out, ld_out, du_out, t_bo, e_b, t0_out)
-        t_in = _clock(bet, ki, rate_in, ld_in, du_in, t_bi, e_b, t0_in)
+        t_out = _clock(bet, ko, rate_out, ld_out, du_out, t_b, e_b, t0_out)
+        for kk in range(ko + 1):
+            T_O[w, kk] = t_out[kk]
+        t_in = _clock(bet, ki, rate_in, ld_in, du_in, t_b, e_b, t0_in)
+        for kk in range(ki + 1):
+            T_I[w, kk] = t_in[kk]
         k, wk = _grid_cell(umatch, iumax_out, n, u_out, idu_out)
         dm_out = math.exp(bet * (ld_out[k] + wk * (ld_out[k + 1] - ld_out[k])))
         k, wk = _grid_cell(umatch, iumax_in, n, u_in, idu_in)
@@ -1024,179 +1030,203 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
             uj = abs(col_xh[j]) * a
             if col_xh[j] > 0:
                 k, wk = _grid_cell(uj, iumax_out, n, u_out, idu_out)
-                tau_c[j] = c2 * A * (t_out[k] + wk * (t_out[k + 1] - t_out[k]))
-                d_c[j] = math.exp(bet * (ld_out[k] + wk * (ld_out[k + 1] - ld_out[k])))
+                TAU[w, j] = c2 * A * (T_O[w, k] + wk * (T_O[w, k + 1] - T_O[w, k]))
+                DC[w, j] = math.exp(bet * (ld_out[k] + wk * (ld_out[k + 1] - ld_out[k])))
             else:
                 k, wk = _grid_cell(uj, iumax_in, n, u_in, idu_in)
-                tau_c[j] = c2 * A * (t_in[k] + wk * (t_in[k + 1] - t_in[k]))
-                d_c[j] = math.exp(bet * (ld_in[k] + wk * (ld_in[k + 1] - ld_in[k])))
-            g_c[j] = 0
-            if col_burg[j] and tau_c[j] > 1e-12:
-                g_c[j] = _node_of(col_prof[j], tau_c[j], inn, it)
-                if g_c[j] < 0:
+                TAU[w, j] = c2 * A * (T_I[w, k] + wk * (T_I[w, k + 1] - T_I[w, k]))
+                DC[w, j] = math.exp(bet * (ld_in[k] + wk * (ld_in[k + 1] - ld_in[k])))
+            GC[w, j] = 0
+            if col_burg[j] and TAU[w, j] > 1e-12:
+                GC[w, j] = _node_of(col_prof[j], TAU[w, j], inn, it)
+                if GC[w, j] < 0:
                     return 1
-        amp_cp = A * cpw
-        # interior points in radius order (sheet columns in turn), exterior points
-        # in (radius bin, azimuth) order: their eta then increases along a bin and
-        # each Burgers bracket is galloped to from the previous one
-        hg0 = -1
-        hp0 = -1
-        hg1 = -1
-        hp1 = -1
-        for pas in range(2):
-            for ii in range(npts):
-                i = ii if pas == 0 else eperm[ii]
-                oi = order[i]
+        WS[w, 0] = irp
+        WS[w, 1] = f1
+        WS[w, 2] = f2
+        WS[w, 3] = f15
+        WS[w, 4] = fg
+        WS[w, 5] = fq
+        WS[w, 6] = dm_out
+        WS[w, 7] = dm_in
+    # points in blocks, all walkers on a block before the next one: walkers close
+    # in parameters (a converged cloud) then find the block's table lines cached.
+    # Interior points in radius order (sheet columns in turn), exterior points in
+    # (radius bin, azimuth) order: their eta then increases along a bin and each
+    # Burgers bracket is galloped to from the walker's previous one
+    for pas in range(2):
+        for blk in range(0, npts, _PT_BLOCK):
+            bend = min(blk + _PT_BLOCK, npts)
+            for w in range(m):
                 if pas == 0:
-                    out_r[w, oi] = 0.0
-                    out_p[w, oi] = 0.0
-                if not inside[i]:
+                    for ii in range(blk, bend):
+                        out_r[w, order[ii]] = 0.0
+                        out_p[w, order[ii]] = 0.0
+                A = amp[w]
+                if A == 0.0:
                     continue
-                x = r[i] * irp
-                xh = (x - 1.0) * ia
-                if (abs(xh) <= xm) != (pas == 0):
-                    continue
-                sg = 1.0 if x > 1.0 else (-1.0 if x < 1.0 else 0.0)
-                # R02 locus phase (closed form, powers of x as products)
-                if log_b:
-                    ph = (pw[0, i] * f1 - 1.0) * i1q - (pw[1, i] - f2)
-                else:
-                    ph = (pw[0, i] * f1 - 1.0) * i1q - (pw[1, i] * f2 - 1.0) * ib
-                dphi = _wrap(phi[i] - (ppw - sg * ph * ia))
-                if abs(xh) <= xm:
-                    # interior: bilinear on (column, s) of the steepened sheet
-                    if xh < xh0 or xh > xh_last:
+                bet = beta[w]
+                irp = WS[w, 0]
+                f1 = WS[w, 1]
+                f2 = WS[w, 2]
+                f15 = WS[w, 3]
+                fg = WS[w, 4]
+                fq = WS[w, 5]
+                dm_out = WS[w, 6]
+                dm_in = WS[w, 7]
+                ppw = phi_p[w]
+                cpw = cp[w]
+                amp_cp = A * cpw
+                for ii in range(blk, bend):
+                    i = ii if pas == 0 else eperm[ii]
+                    oi = order[i]
+                    if not inside[i]:
                         continue
-                    sh = dphi * ia
-                    if sh < s0 or sh > s_last:
+                    x = r[i] * irp
+                    xh = (x - 1.0) * ia
+                    if (abs(xh) <= xm) != (pas == 0):
                         continue
-                    j = int((xh - xh0) * idxc)
-                    if j > nc - 2:
-                        j = nc - 2
-                    wx = (xh - col_xh[j]) / (col_xh[j + 1] - col_xh[j])
-                    k = int((sh - s0) * ids)
-                    if k > ns - 2:
-                        k = ns - 2
-                    ws = (sh - s_grid[k]) / (s_grid[k + 1] - s_grid[k])
-                    # sheet values of the cell read first: their cache misses overlap
-                    # with the Burgers look-ups below
-                    a00 = lin[j, k, 0]
-                    a01 = lin[j, k, 1]
-                    a02 = lin[j, k, 2]
-                    a10 = lin[j, k + 1, 0]
-                    a11 = lin[j, k + 1, 1]
-                    a12 = lin[j, k + 1, 2]
-                    b00 = lin[j + 1, k, 0]
-                    b01 = lin[j + 1, k, 1]
-                    b02 = lin[j + 1, k, 2]
-                    b10 = lin[j + 1, k + 1, 0]
-                    b11 = lin[j + 1, k + 1, 1]
-                    b12 = lin[j + 1, k + 1, 2]
-                    ur = 0.0
-                    up = 0.0
-                    for dj in range(2):
-                        jj = j + dj
-                        wj = wx if dj == 1 else 1.0 - wx
-                        if wj == 0.0:
-                            continue
-                        if dj == 0:
-                            sf0, su0, sv0, sf1, su1, sv1 = a02, a00, a01, a12, a10, a11
-                        else:
-                            sf0, su0, sv0, sf1, su1, sv1 = b02, b00, b01, b12, b10, b11
-                        # the two s nodes, in increasing eta (eta = -s on the inner side)
-                        ch0 = 0.0
-                        ch1 = 0.0
-                        if g_c[jj] > 0:
-                            pj = col_prof[jj]
-                            # s node k is profile sample col_first + k (reversed for x < 0)
-                            if col_xh[jj] > 0:
-                                v0, jb = _eval_local(pj, s_grid[k], tau_c[jj], g_c[jj],
-                                                     col_first[jj] + k, iy, ic, iu, idd, iss,
-                                                     inn, ih, iho, isup)
-                                v1, jb = _eval_local(pj, s_grid[k + 1], tau_c[jj], g_c[jj], jb + 1,
-                                                     iy, ic, iu, idd, iss, inn, ih, iho, isup)
-                            else:
-                                v1, jb = _eval_local(pj, -s_grid[k + 1], tau_c[jj], g_c[jj],
-                                                     col_first[jj] + ns - 2 - k, iy, ic, iu, idd,
-                                                     iss, inn, ih, iho, isup)
-                                v0, jb = _eval_local(pj, -s_grid[k], tau_c[jj], g_c[jj], jb + 1,
-                                                     iy, ic, iu, idd, iss, inn, ih, iho, isup)
-                            ch0 = col_g[jj] * (v0 - sf0)
-                            ch1 = col_g[jj] * (v1 - sf1)
-                        w0 = wj * (1.0 - ws) * d_c[jj]
-                        w1 = wj * ws * d_c[jj]
-                        ur += w0 * (su0 + col_wr[jj] * ch0) + w1 * (su1 + col_wr[jj] * ch1)
-                        up += w0 * (sv0 + col_wp[jj] * ch0) + w1 * (sv1 + col_wp[jj] * ch1)
-                    out_r[w, oi] = amp_cp * ur
-                    out_p[w, oi] = amp_cp * up
-                    continue
-                uu = abs(x - 1.0)
-                if xh > 0:
-                    k, wk = _grid_cell(uu, iumax_out, n, u_out, idu_out)
-                    tt = t_out[k] + wk * (t_out[k + 1] - t_out[k])
-                    prof = 0
-                    dmatch = dm_out
-                else:
-                    k, wk = _grid_cell(uu, iumax_in, n, u_in, idu_in)
-                    tt = t_in[k] + wk * (t_in[k + 1] - t_in[k])
-                    prof = 1
-                    dmatch = dm_in
-                eta = sg * dphi * ia
-                chi = 0.0
-                if tt > 0.0:
-                    ge = _node_of(prof, A * tt, en, et)
-                    if ge < 0:
-                        return 1
-                    hint = -1
-                    if prof == 0 and ge == hg0:
-                        hint = hp0
-                    elif prof == 1 and ge == hg1:
-                        hint = hp1
-                    chi, lo = _eval_at(prof, eta, A * tt, ge, hint, ey, ec, eu, ed, es, eh, eho,
-                                       esup)
-                    if lo >= 0:
-                        if prof == 0:
-                            hg0 = ge
-                            hp0 = lo
-                        else:
-                            hg1 = ge
-                            hp1 = lo
-                # non-wave residual of the sheet, tapered off by 2 x_match
-                wt = (uu * ia - xm) / xm
-                if wt < 0.0:
-                    wt = 0.0
-                res_w = 0.0
-                i0 = res_off[prof]
-                i1 = res_off[prof + 1]
-                if wt < 1.0 and res_eta[i0] <= eta <= res_eta[i1 - 1]:
-                    res_w = A * dmatch * 0.5 * (1.0 + math.cos(math.pi * wt))
-                if chi == 0.0 and res_w == 0.0:
-                    continue
-                rr = 0.0
-                rv = 0.0
-                if res_w != 0.0:
-                    # uniform eta grid of the matching profile (checked at build)
-                    fk = (eta - res_eta[i0]) / (res_eta[i0 + 1] - res_eta[i0])
-                    kk = i0 + int(fk)
-                    if kk > i1 - 2:
-                        kk = i1 - 2
-                    wr = (eta - res_eta[kk]) / (res_eta[kk + 1] - res_eta[kk])
-                    rr = res_u[kk] + wr * (res_u[kk + 1] - res_u[kk])
-                    rv = res_v[kk] + wr * (res_v[kk + 1] - res_v[kk])
-                dd = 1.0
-                if bet != 0.0:
-                    if prof == 0:
-                        dd = math.exp(bet * (ld_out[k] + wk * (ld_out[k + 1] - ld_out[k])))
+                    sg = 1.0 if x > 1.0 else (-1.0 if x < 1.0 else 0.0)
+                    # R02 locus phase (closed form, powers of x as products)
+                    if log_b:
+                        ph = (pw[0, i] * f1 - 1.0) * i1q - (pw[1, i] - f2)
                     else:
-                        dd = math.exp(bet * (ld_in[k] + wk * (ld_in[k + 1] - ld_in[k])))
-                shear = abs(pw[2, i] * f15 - 1.0)
-                g = math.sqrt((2.0 / 3.0) * shear * pw[3, i] * fg * ia)
-                sigma = ksig * g * dd * A * chi
-                xq = pw[4, i] * fq
-                mach = x * shear / (xq * a)
-                norm = math.sqrt(1.0 + mach * mach)
-                out_r[w, oi] = cpw * (xq * sg * mach / norm * sigma + res_w * rr)
-                out_p[w, oi] = cpw * (xq * sg / norm * sigma + res_w * rv)
+                        ph = (pw[0, i] * f1 - 1.0) * i1q - (pw[1, i] * f2 - 1.0) * ib
+                    dphi = _wrap(phi[i] - (ppw - sg * ph * ia))
+                    if abs(xh) <= xm:
+                        # interior: bilinear on (column, s) of the steepened sheet
+                        if xh < xh0 or xh > xh_last:
+                            continue
+                        sh = dphi * ia
+                        if sh < s0 or sh > s_last:
+                            continue
+                        j = int((xh - xh0) * idxc)
+                        if j > nc - 2:
+                            j = nc - 2
+                        wx = (xh - col_xh[j]) / (col_xh[j + 1] - col_xh[j])
+                        k = int((sh - s0) * ids)
+                        if k > ns - 2:
+                            k = ns - 2
+                        ws = (sh - s_grid[k]) / (s_grid[k + 1] - s_grid[k])
+                        # sheet values of the cell read first: their cache misses overlap
+                        # with the Burgers look-ups below
+                        a00 = lin[j, k, 0]
+                        a01 = lin[j, k, 1]
+                        a02 = lin[j, k, 2]
+                        a10 = lin[j, k + 1, 0]
+                        a11 = lin[j, k + 1, 1]
+                        a12 = lin[j, k + 1, 2]
+                        b00 = lin[j + 1, k, 0]
+                        b01 = lin[j + 1, k, 1]
+                        b02 = lin[j + 1, k, 2]
+                        b10 = lin[j + 1, k + 1, 0]
+                        b11 = lin[j + 1, k + 1, 1]
+                        b12 = lin[j + 1, k + 1, 2]
+                        ur = 0.0
+                        up = 0.0
+                        for dj in range(2):
+                            jj = j + dj
+                            wj = wx if dj == 1 else 1.0 - wx
+                            if wj == 0.0:
+                                continue
+                            if dj == 0:
+                                sf0, su0, sv0, sf1, su1, sv1 = a02, a00, a01, a12, a10, a11
+                            else:
+                                sf0, su0, sv0, sf1, su1, sv1 = b02, b00, b01, b12, b10, b11
+                            # the two s nodes, in increasing eta (eta = -s on the inner side)
+                            ch0 = 0.0
+                            ch1 = 0.0
+                            if GC[w, jj] > 0:
+                                pj = col_prof[jj]
+                                # s node k is profile sample col_first + k (reversed for x < 0)
+                                if col_xh[jj] > 0:
+                                    v0, jb = _eval_local(pj, s_grid[k], TAU[w, jj], GC[w, jj],
+                                                         col_first[jj] + k, iy, ic, iu, idd, iss,
+                                                         inn, ih, iho, isup)
+                                    v1, jb = _eval_local(pj, s_grid[k + 1], TAU[w, jj], GC[w, jj], jb + 1,
+                                                         iy, ic, iu, idd, iss, inn, ih, iho, isup)
+                                else:
+                                    v1, jb = _eval_local(pj, -s_grid[k + 1], TAU[w, jj], GC[w, jj],
+                                                         col_first[jj] + ns - 2 - k, iy, ic, iu, idd,
+                                                         iss, inn, ih, iho, isup)
+                                    v0, jb = _eval_local(pj, -s_grid[k], TAU[w, jj], GC[w, jj], jb + 1,
+                                                         iy, ic, iu, idd, iss, inn, ih, iho, isup)
+                                ch0 = col_g[jj] * (v0 - sf0)
+                                ch1 = col_g[jj] * (v1 - sf1)
+                            w0 = wj * (1.0 - ws) * DC[w, jj]
+                            w1 = wj * ws * DC[w, jj]
+                            ur += w0 * (su0 + col_wr[jj] * ch0) + w1 * (su1 + col_wr[jj] * ch1)
+                            up += w0 * (sv0 + col_wp[jj] * ch0) + w1 * (sv1 + col_wp[jj] * ch1)
+                        out_r[w, oi] = amp_cp * ur
+                        out_p[w, oi] = amp_cp * up
+                        continue
+                    uu = abs(x - 1.0)
+                    if xh > 0:
+                        k, wk = _grid_cell(uu, iumax_out, n, u_out, idu_out)
+                        tt = T_O[w, k] + wk * (T_O[w, k + 1] - T_O[w, k])
+                        prof = 0
+                        dmatch = dm_out
+                    else:
+                        k, wk = _grid_cell(uu, iumax_in, n, u_in, idu_in)
+                        tt = T_I[w, k] + wk * (T_I[w, k + 1] - T_I[w, k])
+                        prof = 1
+                        dmatch = dm_in
+                    eta = sg * dphi * ia
+                    chi = 0.0
+                    if tt > 0.0:
+                        ge = _node_of(prof, A * tt, en, et)
+                        if ge < 0:
+                            return 1
+                        hint = -1
+                        if prof == 0 and ge == HG[w, 0]:
+                            hint = HP[w, 0]
+                        elif prof == 1 and ge == HG[w, 1]:
+                            hint = HP[w, 1]
+                        chi, lo = _eval_at(prof, eta, A * tt, ge, hint, ey, ec, eu, ed, es, eh, eho,
+                                           esup)
+                        if lo >= 0:
+                            if prof == 0:
+                                HG[w, 0] = ge
+                                HP[w, 0] = lo
+                            else:
+                                HG[w, 1] = ge
+                                HP[w, 1] = lo
+                    # non-wave residual of the sheet, tapered off by 2 x_match
+                    wt = (uu * ia - xm) / xm
+                    if wt < 0.0:
+                        wt = 0.0
+                    res_w = 0.0
+                    i0 = res_off[prof]
+                    i1 = res_off[prof + 1]
+                    if wt < 1.0 and res_eta[i0] <= eta <= res_eta[i1 - 1]:
+                        res_w = A * dmatch * 0.5 * (1.0 + math.cos(math.pi * wt))
+                    if chi == 0.0 and res_w == 0.0:
+                        continue
+                    rr = 0.0
+                    rv = 0.0
+                    if res_w != 0.0:
+                        # uniform eta grid of the matching profile (checked at build)
+                        fk = (eta - res_eta[i0]) / (res_eta[i0 + 1] - res_eta[i0])
+                        kk = i0 + int(fk)
+                        if kk > i1 - 2:
+                            kk = i1 - 2
+                        wr = (eta - res_eta[kk]) / (res_eta[kk + 1] - res_eta[kk])
+                        rr = res_u[kk] + wr * (res_u[kk + 1] - res_u[kk])
+                        rv = res_v[kk] + wr * (res_v[kk + 1] - res_v[kk])
+                    dd = 1.0
+                    if bet != 0.0:
+                        if prof == 0:
+                            dd = math.exp(bet * (ld_out[k] + wk * (ld_out[k + 1] - ld_out[k])))
+                        else:
+                            dd = math.exp(bet * (ld_in[k] + wk * (ld_in[k + 1] - ld_in[k])))
+                    shear = abs(pw[2, i] * f15 - 1.0)
+                    g = math.sqrt((2.0 / 3.0) * shear * pw[3, i] * fg * ia)
+                    sigma = ksig * g * dd * A * chi
+                    xq = pw[4, i] * fq
+                    mach = x * shear / (xq * a)
+                    norm = math.sqrt(1.0 + mach * mach)
+                    out_r[w, oi] = cpw * (xq * sg * mach / norm * sigma + res_w * rr)
+                    out_p[w, oi] = cpw * (xq * sg / norm * sigma + res_w * rv)
     return 0
 
 
