@@ -355,7 +355,7 @@ def build_profile_table(profiles, tau_max, *, n_nodes=_N_NODES):
 
 @njit(cache=True, _nrt=False)
 def _node_of(p, tau, nodes, t_off):  # pragma: no cover
-    """Index ``g`` of the node list live at ``tau`` (``nodes[g-1] <= tau < nodes[g]``), -1 beyond."""
+    """Index ``g`` of the node list live at ``tau`` (``nodes[g-1] <= tau < nodes[g]``), or -1."""
     n0 = t_off[p]
     n1 = t_off[p + 1]
     if tau > nodes[n1 - 1]:
@@ -398,8 +398,8 @@ def _eval_at(p, eta, tau, g, hint, y, c, u0, death, s_off, h_idx, h_off,
     Same node semantics as :func:`kinkfit.wake.burgers.burgers_nodes` (hull
     vertices at ``y + chi0 tau``, clipped at equal-area shocks, linear between).
     ``g`` is the node list live at ``tau`` (:func:`_node_of`); ``hint`` (or -1)
-    a list position near the bracket (galloping from it, then bisection).  Returns the value and the bracket's list
-    position (-1 outside the support).
+    a list position near the bracket (galloping from it, then bisection).
+    Returns the value and the bracket's list position (-1 outside the support).
     """
     base = s_off[p]
     # outside the Hopf-Lax bound of the support the zero state wins
@@ -1143,13 +1143,16 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
                                     v0, jb = _eval_local(pj, s_grid[k], TAU[w, jj], GC[w, jj],
                                                          col_first[jj] + k, iy, ic, iu, idd, iss,
                                                          inn, ih, iho, isup)
-                                    v1, jb = _eval_local(pj, s_grid[k + 1], TAU[w, jj], GC[w, jj], jb + 1,
+                                    v1, jb = _eval_local(pj, s_grid[k + 1], TAU[w, jj], GC[w, jj],
+                                                         jb + 1,
                                                          iy, ic, iu, idd, iss, inn, ih, iho, isup)
                                 else:
                                     v1, jb = _eval_local(pj, -s_grid[k + 1], TAU[w, jj], GC[w, jj],
-                                                         col_first[jj] + ns - 2 - k, iy, ic, iu, idd,
+                                                         col_first[jj] + ns - 2 - k, iy, ic, iu,
+                                                         idd,
                                                          iss, inn, ih, iho, isup)
-                                    v0, jb = _eval_local(pj, -s_grid[k], TAU[w, jj], GC[w, jj], jb + 1,
+                                    v0, jb = _eval_local(pj, -s_grid[k], TAU[w, jj], GC[w, jj],
+                                                         jb + 1,
                                                          iy, ic, iu, idd, iss, inn, ih, iho, isup)
                                 ch0 = col_g[jj] * (v0 - sf0)
                                 ch1 = col_g[jj] * (v1 - sf1)
@@ -1182,7 +1185,8 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
                             hint = HP[w, 0]
                         elif prof == 1 and ge == HG[w, 1]:
                             hint = HP[w, 1]
-                        chi, lo = _eval_at(prof, eta, A * tt, ge, hint, ey, ec, eu, ed, es, eh, eho,
+                        chi, lo = _eval_at(prof, eta, A * tt, ge, hint, ey, ec, eu, ed, es, eh,
+                                           eho,
                                            esup)
                         if lo >= 0:
                             if prof == 0:
@@ -1250,7 +1254,7 @@ class EmulatorModel:
         self._pts = None
 
     def _cover(self, r_lo, r_hi, rp):
-        """Extend the radial tables (rebuild, cached) if the points in ``[r_lo, r_hi]`` au need it."""
+        """Extend the radial tables (rebuild, cached) if points in ``[r_lo, r_hi]`` au need it."""
         t = self.tables
         x_min = r_lo / float(np.max(rp))
         x_max = r_hi / float(np.min(rp))
