@@ -140,6 +140,9 @@ _SCHEMA: dict[str, tuple[_Field, ...]] = {
         _f("kink_model", "choice", "forward", choices=("forward", "first-order"),
            doc="model kink: the traced peak of the beam-smeared model "
                "channel (forward) or the first-order shift at the point"),
+        _f("background_prior", _Q, 3.0, unit="", low=0.0,
+           doc="marginalise the planet fit over the background disk, with "
+               "a Gaussian prior this many fitted sigmas wide (0: fixed)"),
     ),
     "sampler": (
         _f("walkers", "int", 32, low=4, doc="emcee walkers"),
@@ -283,6 +286,7 @@ class LikelihoodSettings:
     kind: str
     dof: float
     kink_model: str = "forward"
+    background_prior: float = 3.0
 
 
 @dataclass(frozen=True)
@@ -589,7 +593,8 @@ def parse_config(text: str, path: str | Path | None = None) -> KinkfitConfig:
     trace = TraceSettings(tuple(t["surfaces"]), t["min_snr"],
                           t["points_per_beam"], t["debias"])
     lk = _section(raw.get("likelihood", {}), "likelihood", file)
-    likelihood = LikelihoodSettings(lk["kind"], lk["dof"], lk["kink_model"])
+    likelihood = LikelihoodSettings(lk["kind"], lk["dof"], lk["kink_model"],
+                                    lk["background_prior"])
     s = _section(raw.get("sampler", {}), "sampler", file)
     sampler = SamplerSettings(**s)
     o = _section(raw.get("output", {}), "output", file)

@@ -398,3 +398,35 @@ def trace_and_fit(cube, geom0, settings, free=DEFAULT_FREE, *, rounds: int = 3,
         if np.all(moved < tol_sigma * np.maximum(new.errors, 1e-12)):
             break
     return ridges, fit
+
+
+def offset_jacobian(fit, ridges, rel_step: float = 0.1):
+    """Derivatives of the points' first-order offsets w.r.t. the background.
+
+    ``J[i, j] = d offset_i / d g_j`` for the free background parameters
+    ``fit.names`` at ``fit.values``, by central differences of
+    :func:`kinkfit.deviations.signed_offsets` with steps ``rel_step`` times
+    each parameter's fitted error (arcsec per unit of each parameter, see
+    :data:`PARAMETERS`).  Used to marginalise the planet fit over the
+    background disk (:class:`kinkfit.likelihood.KinkLikelihood`,
+    ``nuisance``): a small change ``dg`` of the background moves every
+    offset by ``J dg``.
+
+    Returns
+    -------
+    ndarray, shape (n, k)
+    """
+    from .deviations import signed_offsets
+    x, y = ridges.x_arcsec, ridges.y_arcsec
+    v, surf = ridges.velocity_kms, ridges.surface
+    base = dict(zip(fit.names, (float(a) for a in fit.values)))
+    cols = []
+    for name, err in zip(fit.names, fit.errors):
+        h = rel_step * float(err) if np.isfinite(err) and err > 0 else 1e-4
+        up = _set(fit.geometry, {**base, name: base[name] + h})
+        dn = _set(fit.geometry, {**base, name: base[name] - h})
+        o_up, _ = signed_offsets(up, x, y, v, surf)
+        o_dn, _ = signed_offsets(dn, x, y, v, surf)
+        cols.append((o_up - o_dn) / (2.0 * h))
+    J = np.column_stack(cols)
+    return np.where(np.isfinite(J), J, 0.0)

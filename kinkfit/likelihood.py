@@ -124,7 +124,8 @@ class KinkLikelihood:
     def __init__(self, r_au, phi_rad, a_r, a_phi, grad_kms_per_arcsec,
                  offset_arcsec, sigma_arcsec, model: ModelFn | None,
                  param_set: ParameterSet, *, kind: str = "gaussian",
-                 dof: float = 4.0, channel=None, response=None):
+                 dof: float = 4.0, channel=None, response=None,
+                 nuisance=None):
         if response is not None:
             # the forward-modelled tracer (kinkfit.response): the data are
             # the kinks relative to the background model's own smeared ridge
@@ -174,6 +175,17 @@ class KinkLikelihood:
         self.model = null_model if model is None else model
         self.is_baseline = model is None
         self.response = response
+        # linear nuisance offsets J dg (background disk), marginalised
+        # analytically per sample: (J (npts, k), prior precision (k, k))
+        self.nuisance = None
+        if nuisance is not None:
+            J, prec = nuisance
+            J = np.array(J, dtype=float).reshape(npts, -1)
+            prec = np.array(prec, dtype=float).reshape(J.shape[1], J.shape[1])
+            if not (np.all(np.isfinite(J)) and np.all(np.isfinite(prec))):
+                raise KinkfitError("nuisance design has non-finite values",
+                                   key="nuisance")
+            self.nuisance = (J, prec)
         self.param_set = param_set
         self.kind = kind
         self.dof = float(dof)
@@ -279,9 +291,14 @@ class KinkLikelihood:
             jit = params["jitter"] if self._has_jitter else np.zeros(len(pred))
             var = self._sig2[None, :] + (jit ** 2)[:, None]
             with np.errstate(all="ignore"):
-                r2 = (self.data["offset_arcsec"][None, :] - pred) ** 2 / var
+                resid = self.data["offset_arcsec"][None, :] - pred
+                logdet = 0.0
+                if self.nuisance is not None:
+                    resid, logdet = self._marginalise(resid, var)
+                r2 = resid ** 2 / var
                 if self.kind == "gaussian":
-                    pw = -0.5 * r2 - 0.5 * np.log(2 * np.pi * var)
+                    pw = (-0.5 * r2 - 0.5 * np.log(2 * np.pi * var)
+                          - 0.5 * np.asarray(logdet)[..., None] / self.npts)
                 else:
                     nu = self.dof
                     pw = (self._t_const - 0.5 * np.log(var)
@@ -292,6 +309,30 @@ class KinkLikelihood:
             ll[ok] = pw
             codes[ok] = mcodes
         return ll, lp, codes
+
+    def _marginalise(self, resid, var):
+        """Residuals with the best nuisance offsets removed, and the
+        log-determinant term of the Gaussian marginal likelihood.
+
+        With offsets ``J dg`` and a Gaussian prior of precision ``P`` on
+        ``dg``, integrating ``dg`` out of a Gaussian likelihood leaves the
+        residual ``r' = r - J dg``, ``dg = A^-1 J^T W r`` (``W = 1/var``,
+        ``A = J^T W J + P``), the prior term ``exp(-dg^T P dg / 2)`` and a
+        factor ``det(A)^(-1/2) det(P)^(1/2)``: exactly the Gaussian
+        ``N(r; 0, C + J P^-1 J^T)``; the constant ``det(P)`` is dropped.
+        The returned second value is ``ln det A + dg^T P dg``.  For the Student-t option the same profile
+        shift is applied (an approximation).
+        """
+        J, prec = self.nuisance
+        w = 1.0 / var                                      # (m, n)
+        A = np.einsum("nk,mn,nl->mkl", J, w, J) + prec[None]
+        b = np.einsum("nk,mn->mk", J, w * resid)
+        dg = np.linalg.solve(A, b[..., None])[..., 0]      # (m, k)
+        sign, logdet = np.linalg.slogdet(A)
+        logdet = np.where(sign > 0, logdet, np.inf)
+        # the prior's own term dg^T P dg completes the square exactly
+        penalty = np.einsum("mk,kl,ml->m", dg, prec, dg)
+        return resid - dg @ J.T, logdet + penalty
 
     def _count(self, codes):
         self.counters["evaluated"] += int(codes.size)

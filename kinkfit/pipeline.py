@@ -148,7 +148,7 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
 
     from .likelihood import KinkLikelihood
     from .results import assemble_result, write_result
-    from .sampling import find_start, run_sampler
+    from .sampling import find_modes, find_start, run_sampler
     from .scenario import wake_disk
 
     path = folder / f"fit_{name}.h5"
@@ -170,7 +170,9 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
         model = None
     like = KinkLikelihood.from_deviations(
         deviations, model, pset, kind=cfg.likelihood.kind,
-        dof=cfg.likelihood.dof, response=response)
+        dof=cfg.likelihood.dof, response=response,
+        nuisance=background_nuisance(cfg, background, deviations)
+        if response is not None else None)
     settings = cfg.sampler
     if workers is not None or progress is not None:
         settings = replace(settings,
@@ -193,7 +195,14 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
         # written (iteration 0): start exactly as an uninterrupted run does
         # many cheap prior draws (one vectorised call of the emulator), the
         # best few polished: the wake posterior is multimodal in azimuth
-        start = find_start(like.log_prob, pset, rng, n_tries=4096, n_polish=6)
+        if response is not None:
+            # the forward model's posterior can have competing modes (mass
+            # trades against radius and azimuth): start in each of them
+            start = find_modes(like.log_prob, pset, rng, n_tries=4096,
+                               n_polish=6)
+        else:
+            start = find_start(like.log_prob, pset, rng, n_tries=4096,
+                               n_polish=6)
     outcome = run_sampler(like.log_prob, pset, settings, checkpoint,
                           initial=start, rng_seed=settings.seed,
                           resume=resume and not force)
@@ -212,6 +221,28 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
     log.info("%s: %d steps in %.1f s, converged=%s", path.name,
              outcome.n_steps, time.perf_counter() - t0, outcome.converged)
     return path, result, status
+
+
+def background_nuisance(cfg, background, deviations):
+    """Linear background-disk nuisance of the planet fit, or None.
+
+    ``J = d offset / d g`` at the traced points for the fitted background
+    parameters (:func:`kinkfit.diskfit.offset_jacobian`) and a Gaussian
+    prior on ``dg`` of ``likelihood.background_prior`` times each fitted
+    error (the background fit is made before, and without, the planet
+    model, and its errors ignore the remaining model error: widening them
+    is common practice, no source).  None when the background was not
+    fitted or the prior width is 0.
+    """
+    width = float(getattr(cfg.likelihood, "background_prior", 0.0))
+    if background is None or width <= 0 or not hasattr(background, "errors"):
+        return None
+    from .diskfit import offset_jacobian
+    errors = np.asarray(background.errors, dtype=float)
+    if not np.all(np.isfinite(errors) & (errors > 0)):
+        return None
+    J = offset_jacobian(background, deviations.ridges)
+    return J, np.diag(1.0 / (width * errors) ** 2)
 
 
 def forward_response(cube, ridges, geometry, deviations):

@@ -54,6 +54,8 @@ __all__ = ["RidgeResponse", "build_ridge_response"]
 log = logging.getLogger(__name__)
 
 _FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
+#: sharpness of the soft maximum that locates a cut profile's peak
+PEAK_SHARPNESS = 6.0
 _SQRT2 = math.sqrt(2.0)
 
 
@@ -89,10 +91,13 @@ class RidgeResponse:
     inner : ndarray of bool, shape (n, M)
         Samples where a peak may be taken (away from the window edges).
     s_ref : ndarray, shape (n,)
-        The data's peak position along each cut, arcsec: the model takes
-        its local maximum nearest to it (as the bias model does).
+        The tracer's peak position along each cut, arcsec (the model's
+        samples are centred on it).
+    s_data : ndarray, shape (n,)
+        The data's half-maximum centroid along each cut (the same estimator
+        as the model's), arcsec.
     s0 : ndarray, shape (n,)
-        Background model's peak position, arcsec along the cut.
+        Background model's centroid, arcsec along the cut.
     kappa : ndarray, shape (n,)
         d(first-order offset)/ds at each point.
     """
@@ -112,6 +117,7 @@ class RidgeResponse:
     s_grid: np.ndarray
     inner: np.ndarray
     s_ref: np.ndarray
+    s_data: np.ndarray
     s0: np.ndarray
     kappa: np.ndarray
     meta: dict = field(default_factory=dict)
@@ -126,8 +132,8 @@ class RidgeResponse:
 
     @property
     def observed(self) -> np.ndarray:
-        """The data's kinks, ``kappa (s_ref - s0)``, arcsec, shape (n,)."""
-        return self.kappa * (self.s_ref - self.s0)
+        """The data's kinks, ``kappa (s_data - s0)``, arcsec, shape (n,)."""
+        return self.kappa * (self.s_data - self.s0)
 
     def _phi0(self):
         if not hasattr(self, "_phi0_cache"):
@@ -157,7 +163,7 @@ class RidgeResponse:
             dphi = _channel_profile(self.v_bg + dvp, self.s2, self.lo,
                                     self.hi, self.scale) - phi0
             f = self.f0 + np.einsum("nmq,nq->nm", self.weight, dphi)
-            out[j] = _nearest_peak(f, self.s_grid, self.inner, self.s_ref)
+            out[j] = _centroid(f, self.s_grid, self.inner)
         return out
 
     def offsets(self, dv_los_nodes: np.ndarray) -> np.ndarray:
@@ -168,6 +174,28 @@ class RidgeResponse:
         state = dict(self.__dict__)
         state.pop("_phi0_cache", None)
         return state
+
+
+def _centroid(f, s_grid, inner, sharpness=None):
+    """Soft maximum position of each row (inner samples only).
+
+    ``s = sum w s / sum w``, ``w = exp(sharpness (f - max f) / max f)``: a
+    smooth function of the profile (two nearly equal peaks are averaged
+    instead of switching), equal to the peak for a symmetric one, and
+    local (samples below ~0.9 of the maximum hardly count, so a broad band
+    cut by the window is measured at its top).  ``f`` (n, M).
+    """
+    if sharpness is None:
+        sharpness = PEAK_SHARPNESS
+    fi = np.where(inner, f, -np.inf)
+    top = np.max(fi, axis=1, keepdims=True)
+    scale = np.where(np.abs(top) > 0, np.abs(top), 1.0)
+    with np.errstate(invalid="ignore", over="ignore"):
+        w = np.where(inner, np.exp(sharpness * (f - top) / scale), 0.0)
+    tot = w.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        c = (w * s_grid).sum(axis=1) / tot
+    return np.where(tot > 0, c, np.nan)
 
 
 def _nearest_peak(f, s_grid, inner, s_ref):
@@ -330,7 +358,9 @@ def build_ridge_response(cube, ridges, geom, emission, *, background=None,
     s_grid = np.full((n, M), np.nan)
     inner = np.zeros((n, M), dtype=bool)
     f0 = np.zeros((n, M))
+    fd = np.zeros((n, M))
     img_cache = {}
+    data_cache = {}
     for i in range(n):
         pos = np.searchsorted(flat, node_lists[i])
         pos = pos[keep_u[pos]]
@@ -366,6 +396,13 @@ def build_ridge_response(cube, ridges, geom, emission, *, background=None,
                                        prefilter=False)
         f0[i, :nk] = kern @ np.nan_to_num(prof)
         f0[i, nk:] = f0[i, nk - 1]
+        if k not in data_cache:
+            data_cache[k] = np.nan_to_num(np.asarray(cube.data[k], float))
+        prof_d = ndimage.map_coordinates(data_cache[k], [rows, cols], order=1,
+                                         mode="constant", cval=0.0,
+                                         prefilter=False)
+        fd[i, :nk] = kern @ prof_d
+        fd[i, nk:] = fd[i, nk - 1]
         if q == 0:
             continue
         qx, qy = fx[pos], fy[pos]
@@ -400,7 +437,12 @@ def build_ridge_response(cube, ridges, geom, emission, *, background=None,
         s2[i, :q] = _SQRT2 * sig_f[pos]
         lo[i, :q], hi[i, :q] = lo_k, hi_k
         scale[i, :q] = math.sqrt(math.pi) / 2.0 * s2[i, :q] / dv_ch
-    s0 = _nearest_peak(f0, np.nan_to_num(s_grid), inner, s_data)
+    s_grid = np.nan_to_num(s_grid)
+    s0 = _centroid(f0, s_grid, inner)
+    s_meas = _centroid(fd, s_grid, inner)
+    bad = ~(np.isfinite(s0) & np.isfinite(s_meas))
+    s0 = np.where(bad, 0.0, s0)
+    s_meas = np.where(bad, 0.0, s_meas)
     # d(first-order offset)/ds at each point, by a central difference
     eps = 0.25 * pix
     surf = np.where(np.asarray(ridges.surface) == 1, "back", "front")
@@ -421,8 +463,8 @@ def build_ridge_response(cube, ridges, geom, emission, *, background=None,
     return RidgeResponse(
         node_r_au=r_f[keep_u], node_phi_rad=phi_f[keep_u], node_a_r=a_r,
         node_a_phi=a_phi, node_index=node_index, weight=weight, v_bg=v_bg,
-        s2=s2, lo=lo, hi=hi, scale=scale, f0=f0, s_grid=np.nan_to_num(s_grid),
-        inner=inner, s_ref=s_data, s0=s0, kappa=kappa,
+        s2=s2, lo=lo, hi=hi, scale=scale, f0=f0, s_grid=s_grid,
+        inner=inner, s_ref=s_data, s_data=s_meas, s0=s0, kappa=kappa,
         meta={"reach_sigma": reach_sigma, "node_stride": node_stride,
               "n_nodes": int(keep_u.sum()),
               "nodes_per_point_padded": Q, "samples_per_cut": M})

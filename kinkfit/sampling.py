@@ -57,7 +57,8 @@ import numpy as np
 from .errors import ConfigError, KinkfitError, ResultFileError
 from .params import ParameterSet
 
-__all__ = ["SamplerOutcome", "run_sampler", "find_start", "initial_ball",
+__all__ = ["SamplerOutcome", "run_sampler", "find_start", "find_modes",
+           "initial_ball",
            "read_checkpoint", "CHECKPOINT_GROUP"]
 
 log = logging.getLogger(__name__)
@@ -182,6 +183,63 @@ def initial_ball(center, param_set: ParameterSet, nwalkers: int,
                                "log-probability is finite around the start "
                                "point", key="initial", value=center.tolist())
     return p
+
+
+def find_modes(log_prob: Callable, param_set: ParameterSet,
+               rng: np.random.Generator, n_tries: int = 256,
+               n_polish: int = 3, maxiter: int = 2000,
+               max_drop: float = 10.0) -> np.ndarray:
+    """Distinct polished optima, best first (see :func:`find_start`).
+
+    The ``n_polish`` best prior draws are polished; optima that differ by
+    more than 1% of the prior width in some parameter and whose
+    log-probability is within ``max_drop`` of the best are all returned, so
+    that the walkers can start in every competitive mode (a wake posterior
+    can have several: mass and radius trade against each other).
+
+    Returns
+    -------
+    ndarray, shape (k, ndim), k >= 1
+    """
+    from scipy.optimize import minimize
+
+    draws = param_set.sample_prior(rng, n_tries)
+    lp = np.asarray(log_prob(draws), dtype=float)
+    lp = np.where(np.isnan(lp), -np.inf, lp)
+    if not np.any(np.isfinite(lp)):
+        raise KinkfitError(f"none of {n_tries} prior draws has a finite "
+                           f"log-probability; check the priors and the data",
+                           key="planet")
+    order = np.argsort(-lp)[:n_polish]
+
+    def neg(x):
+        v = float(np.asarray(log_prob(np.asarray(x)[None]))[0])
+        return 1e300 if not np.isfinite(v) else -v
+
+    found = []
+    for k in order:
+        if not np.isfinite(lp[k]):
+            continue
+        res = minimize(neg, draws[k], method="Nelder-Mead",
+                       options={"maxiter": maxiter, "xatol": 1e-8,
+                                "fatol": 1e-8})
+        x, v = np.asarray(res.x, dtype=float), float(res.fun)
+        if v > -lp[k]:              # polishing never makes a start worse
+            x, v = draws[k], -lp[k]
+        found.append((v, x))
+    found.sort(key=lambda t: t[0])
+    lo, hi = _support(param_set)
+    width = np.where(np.isfinite(hi - lo), hi - lo, 1.0)
+    modes = []
+    for v, x in found:
+        if v > found[0][0] + max_drop:
+            break
+        if all(np.any(np.abs(x - m) > 0.01 * width) for _, m in modes):
+            modes.append((v, x))
+    for v, x in modes:
+        log.info("start mode: log_prob = %.6g at %s", -v,
+                 dict(zip(param_set.free, np.round(x, 6))))
+    return np.array([x for _, x in modes])
 
 
 def find_start(log_prob: Callable, param_set: ParameterSet,
@@ -495,9 +553,10 @@ def run_sampler(log_prob: Callable, param_set: ParameterSet, settings,
         tau_tolerance, seed, workers, progress``.
     checkpoint_path : path-like
         HDF5 checkpoint (created, or continued when ``resume``).
-    initial : ndarray, shape (ndim,), optional
-        Centre of the initial walker ball (e.g. :func:`find_start`);
-        default: walkers drawn from the prior.
+    initial : ndarray, shape (ndim,) or (k, ndim), optional
+        Centre(s) of the initial walker ball(s) (e.g. :func:`find_start`,
+        :func:`find_modes`; walkers are shared round-robin between several
+        centres); default: walkers drawn from the prior.
     rng_seed : int, optional
         Seed of the walker ball and of emcee's ``RandomState``; default
         ``settings.seed``.  Ignored on resume (the stored state is used).
@@ -579,8 +638,14 @@ def run_sampler(log_prob: Callable, param_set: ParameterSet, settings,
                     p0[bad] = param_set.sample_prior(rng, int(bad.sum()))
                     bad = ~np.isfinite(evaluator(p0))
             else:
-                p0 = initial_ball(initial, param_set, nwalkers, rng,
-                                  evaluator, scale=ball_scale)
+                # one small ball per start mode, walkers shared round-robin
+                centres = np.atleast_2d(np.asarray(initial, dtype=float))
+                share = np.bincount(np.arange(nwalkers) % len(centres),
+                                    minlength=len(centres))
+                p0 = np.concatenate([
+                    initial_ball(c, param_set, int(k), rng, evaluator,
+                                 scale=ball_scale)
+                    for c, k in zip(centres, share) if k > 0])
             state = p0
         else:
             # emcee's backend stores the RandomState after every step; make

@@ -223,3 +223,42 @@ def test_never_nan_property(u, scale, kind):
     lik = KinkLikelihood(model=standin_model, param_set=ps, kind=kind, **d)
     lp = lik.log_prob(theta)
     assert np.isfinite(lp[0])
+
+
+def test_background_nuisance_equals_the_gaussian_marginal(rng):
+    """Offsets J dg with a Gaussian prior N(0, P^-1) on dg, integrated out:
+    the linear-Gaussian marginal N(r; 0, C + J P^-1 J^T) (Bishop 2006,
+    *Pattern Recognition and Machine Learning*, eq. 2.115), evaluated with
+    scipy.stats.multivariate_normal; kinkfit drops the constant
+    0.5 ln det P."""
+    d = standin_data(rng)
+    ps = standin_params()
+    n = d["r_au"].size
+    J = rng.normal(scale=0.01, size=(n, 3))
+    prior_sd = np.array([0.5, 2.0, 1.0])
+    prec = np.diag(prior_sd ** -2.0)
+    lik = KinkLikelihood(model=standin_model, param_set=ps, **d,
+                         nuisance=(J, prec))
+    theta = _theta(ps, 4, rng)
+    got = lik.log_likelihood(theta)
+    pred = _expected_offsets(d, theta, ps)
+    jit = ps.unpack(theta)["jitter"]
+    for k in range(len(theta)):
+        cov = (np.diag(d["sigma_arcsec"] ** 2 + jit[k] ** 2)
+               + J @ np.diag(prior_sd ** 2) @ J.T)
+        want = stats.multivariate_normal(mean=pred[k], cov=cov).logpdf(
+            d["offset_arcsec"])
+        const = 0.5 * np.linalg.slogdet(prec)[1]
+        assert got[k] + const == pytest.approx(want, rel=1e-9, abs=1e-8)
+    # a broad prior removes what J can absorb: a pure J-pattern in the data
+    # costs (almost) nothing
+    d2 = dict(d)
+    d2["offset_arcsec"] = _expected_offsets(d, theta[:1], ps)[0] + J @ [0.3, -1, 0.5]
+    a = KinkLikelihood(model=standin_model, param_set=ps, **d2,
+                       nuisance=(J, prec * 1e-6)).log_likelihood(theta[:1])
+    b = KinkLikelihood(model=standin_model, param_set=ps, **d2,
+                       nuisance=(J, prec * 1e-6))
+    d2["offset_arcsec"] = _expected_offsets(d, theta[:1], ps)[0]
+    c = KinkLikelihood(model=standin_model, param_set=ps, **d2,
+                       nuisance=(J, prec * 1e-6)).log_likelihood(theta[:1])
+    assert a[0] == pytest.approx(c[0], abs=1e-6)
