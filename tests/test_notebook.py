@@ -71,6 +71,7 @@ MAX_STEPS = 30
 CHECK_EVERY = 15
 SEED = 11
 DAMPING = ["viscous", "none"]
+KINK_MODEL = "first-order"
 """
 
 
