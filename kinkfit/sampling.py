@@ -249,39 +249,15 @@ def find_start(log_prob: Callable, param_set: ParameterSet,
 
     Draws ``n_tries`` vectors from the prior, evaluates them in one
     vectorised call, and polishes the best ``n_polish`` with
-    ``scipy.optimize.minimize(method="Nelder-Mead")`` on ``-log_prob``.
+    ``scipy.optimize.minimize(method="Nelder-Mead")`` on ``-log_prob``
+    (the best of :func:`find_modes`).
 
     Returns
     -------
     ndarray, shape (ndim,): the best point found (inside the prior).
     """
-    from scipy.optimize import minimize
-
-    draws = param_set.sample_prior(rng, n_tries)
-    lp = np.asarray(log_prob(draws), dtype=float)
-    lp = np.where(np.isnan(lp), -np.inf, lp)
-    if not np.any(np.isfinite(lp)):
-        raise KinkfitError(f"none of {n_tries} prior draws has a finite "
-                           f"log-probability; check the priors and the data",
-                           key="planet")
-    order = np.argsort(-lp)[:n_polish]
-
-    def neg(x):
-        v = float(np.asarray(log_prob(np.asarray(x)[None]))[0])
-        return 1e300 if not np.isfinite(v) else -v
-
-    best_x, best_v = draws[order[0]], -lp[order[0]]
-    for k in order:
-        if not np.isfinite(lp[k]):
-            continue
-        res = minimize(neg, draws[k], method="Nelder-Mead",
-                       options={"maxiter": maxiter, "xatol": 1e-8,
-                                "fatol": 1e-8})
-        if res.fun < best_v:
-            best_x, best_v = np.asarray(res.x, dtype=float), float(res.fun)
-    log.info("start point: log_prob = %.6g at %s", -best_v,
-             dict(zip(param_set.free, np.round(best_x, 6))))
-    return best_x
+    return find_modes(log_prob, param_set, rng, n_tries=n_tries,
+                      n_polish=n_polish, maxiter=maxiter)[0]
 
 
 # ---------------------------------------------------- pool machinery ---

@@ -37,17 +37,24 @@ def _products_valid(folder: Path):
         read_trace_file(folder / "trace.h5")
 
 
-def test_sigkill_at_random_points_then_resume(tmp_path):
+def _reference_and_twin(tmp_path, twin, steps):
+    """An uninterrupted fit's result, and the config of an identical fit in
+    the folder ``twin`` (its cube synthesised, nothing run yet)."""
     ref_dir = tmp_path / "ref"
     ref_dir.mkdir()
-    cfg_ref = _config(ref_dir, steps=150)
+    cfg_ref = _config(ref_dir, steps=steps)
     synth_from_config(cfg_ref)
     reference = read_result(run_fit(cfg_ref, progress=False).results["none"])
-
-    work = tmp_path / "killed"
+    work = tmp_path / twin
     work.mkdir()
-    cfg = _config(work, steps=150)
+    cfg = _config(work, steps=steps)
     synth_from_config(cfg)
+    return reference, cfg
+
+
+def test_sigkill_at_random_points_then_resume(tmp_path):
+    reference, cfg = _reference_and_twin(tmp_path, "killed", 150)
+    work = tmp_path / "killed"
     env = dict(os.environ, OMP_NUM_THREADS="1")
     rng = np.random.default_rng(4)
     statuses = []
@@ -85,16 +92,7 @@ def test_checkpoint_killed_before_first_block_restarts_like_a_new_fit(tmp_path):
     """
     from kinkfit.sampling import _open_backend
 
-    ref_dir = tmp_path / "ref"
-    ref_dir.mkdir()
-    cfg_ref = _config(ref_dir, steps=40)
-    synth_from_config(cfg_ref)
-    reference = read_result(run_fit(cfg_ref, progress=False).results["none"])
-
-    work = tmp_path / "empty"
-    work.mkdir()
-    cfg = _config(work, steps=40)
-    synth_from_config(cfg)
+    reference, cfg = _reference_and_twin(tmp_path, "empty", 40)
     folder = cfg.output.folder
     folder.mkdir(parents=True, exist_ok=True)
     pset = cfg.parameter_set("none", with_planet=True)
