@@ -699,6 +699,17 @@ def _spectral_axis(hdr, m, ispec, ctype, nchan, path, card):
 
     pix = np.arange(nchan, dtype=float)
     velocity = radio_kms(pix)
+    if not np.all(np.isfinite(velocity)):
+        raise InputFileError(f"{path}: channel velocities are not finite on "
+                             f"axis {s}", file=path, key=f"CDELT{s}")
+    if nchan > 1 and not np.all(np.abs(np.diff(velocity)) > 1e-6):
+        # e.g. a frequency axis near 0 Hz or a vanishing increment: every
+        # channel at the same velocity (to 1 mm/s)
+        raise InputFileError(
+            f"{path}: channel velocities are not distinct on axis {s} "
+            f"(spacing {float(np.min(np.abs(np.diff(velocity)))):.3g} km/s); "
+            f"check CRVAL{s}, CDELT{s} and the rest frequency",
+            file=path, key=f"CDELT{s}")
     if nchan > 1:   # median spacing of adjacent channel centres
         width = float(np.median(np.abs(np.diff(velocity))))
     else:           # one channel: its extent along the axis

@@ -69,7 +69,8 @@ def make_case(geom, *, peak_snr=20.0, seed=1, npix=128, nchan=40, dv=0.2,
 
 
 def config_text(cube_path="unused.fits", *, rotation=1, start=None,
-                surfaces=("front", "back"), folder="out", debias=True):
+                surfaces=("front", "back"), folder="out", debias=True,
+                kink_model="forward"):
     """TOML of a config whose [disk] start values are off the truth."""
     s = dict(mass=1.04, inc=37.0, pa=128.5, vsys=5.03, aspect=0.15,
              flaring=1.0)
@@ -96,6 +97,8 @@ surface_flaring = {s["flaring"]}
 surfaces = [{surf}]
 min_snr = 4.0
 debias = {"true" if debias else "false"}
+[likelihood]
+kink_model = "{kink_model}"
 [output]
 folder = "{folder}"
 '''
