@@ -24,12 +24,15 @@ as in :func:`kinkfit.synth.make_cube`).  ``I_0`` is the noise-free model
 cube of the background disk (:func:`kinkfit.deviations.model_cube`) -- the
 same one that gives the beam-smearing bias.  Sampled along the cut and
 filtered with the tracer's Gaussian template (normalised over the window,
-as :func:`kinkfit.trace.peak_along_cuts`), ``F = K (P_0 + B' dI)``, and the
-predicted peak ``s`` is the interior local maximum nearest to the
-background model's own peak ``s_0``, refined by a parabola.  The model kink
-is ``kappa (s - s_0)``, ``kappa`` = d(first-order offset)/ds at the point,
-so that without a planet it is exactly zero and the data it is compared with
-are the debiased offsets.
+as :func:`kinkfit.trace.peak_along_cuts`), ``F = K (P_0 + B' dI)``.  The
+peak is located by a soft maximum of the profile (:func:`_soft_peak`),
+applied alike to the data's own cut profile (``s_data``), to the background
+model's (``s_0``) and to the model with the wake (``s``): a smooth function
+of the parameters, where the tracer's nearest-local-maximum rule switches
+between the two peaks of a kinked profile.  The model kink is
+``kappa (s - s_0)`` and the data kink ``kappa (s_data - s_0)``, ``kappa`` =
+d(first-order offset)/ds at the point; without a planet the model kink is
+exactly zero and the beam-smearing bias is built in.
 
 Everything but ``dv`` at the nodes is precomputed once per fit; an
 evaluation costs one wake-model call at the nodes, ``m * sum_i Q_i`` error
@@ -163,7 +166,7 @@ class RidgeResponse:
             dphi = _channel_profile(self.v_bg + dvp, self.s2, self.lo,
                                     self.hi, self.scale) - phi0
             f = self.f0 + np.einsum("nmq,nq->nm", self.weight, dphi)
-            out[j] = _centroid(f, self.s_grid, self.inner)
+            out[j] = _soft_peak(f, self.s_grid, self.inner)
         return out
 
     def offsets(self, dv_los_nodes: np.ndarray) -> np.ndarray:
@@ -176,7 +179,7 @@ class RidgeResponse:
         return state
 
 
-def _centroid(f, s_grid, inner, sharpness=None):
+def _soft_peak(f, s_grid, inner, sharpness=None):
     """Soft maximum position of each row (inner samples only).
 
     ``s = sum w s / sum w``, ``w = exp(sharpness (f - max f) / max f)``: a
@@ -196,34 +199,6 @@ def _centroid(f, s_grid, inner, sharpness=None):
     with np.errstate(invalid="ignore", divide="ignore"):
         c = (w * s_grid).sum(axis=1) / tot
     return np.where(tot > 0, c, np.nan)
-
-
-def _nearest_peak(f, s_grid, inner, s_ref):
-    """Interior local maximum of each row nearest to ``s_ref``, refined.
-
-    ``f`` (n, M); rows without an interior maximum return the position of
-    their largest interior sample (a saturated kink).
-    """
-    n, mm = f.shape
-    locmax = np.zeros_like(inner)
-    locmax[:, 1:-1] = (f[:, 1:-1] >= f[:, :-2]) & (f[:, 1:-1] >= f[:, 2:])
-    cand = locmax & inner
-    with np.errstate(invalid="ignore"):
-        dist = np.where(cand, np.abs(s_grid - s_ref[:, None]), np.inf)
-    j = np.argmin(dist, axis=1)
-    none = ~np.isfinite(dist[np.arange(n), j])
-    if np.any(none):
-        fi = np.where(inner, f, -np.inf)
-        j = np.where(none, np.argmax(fi, axis=1), j)
-    j = np.clip(j, 1, mm - 2)
-    r = np.arange(n)
-    ym, y0, yp = f[r, j - 1], f[r, j], f[r, j + 1]
-    den = ym - 2.0 * y0 + yp
-    with np.errstate(divide="ignore", invalid="ignore"):
-        frac = np.where(den < 0, 0.5 * (ym - yp) / den, 0.0)
-    frac = np.clip(np.nan_to_num(frac), -1.0, 1.0)
-    step = s_grid[r, j + 1] - s_grid[r, j]
-    return s_grid[r, j] + frac * step
 
 
 def build_ridge_response(cube, ridges, geom, emission, *, background=None,
@@ -438,8 +413,8 @@ def build_ridge_response(cube, ridges, geom, emission, *, background=None,
         lo[i, :q], hi[i, :q] = lo_k, hi_k
         scale[i, :q] = math.sqrt(math.pi) / 2.0 * s2[i, :q] / dv_ch
     s_grid = np.nan_to_num(s_grid)
-    s0 = _centroid(f0, s_grid, inner)
-    s_meas = _centroid(fd, s_grid, inner)
+    s0 = _soft_peak(f0, s_grid, inner)
+    s_meas = _soft_peak(fd, s_grid, inner)
     bad = ~(np.isfinite(s0) & np.isfinite(s_meas))
     s0 = np.where(bad, 0.0, s0)
     s_meas = np.where(bad, 0.0, s_meas)
