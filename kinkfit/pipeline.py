@@ -261,8 +261,7 @@ def forward_response(cube, ridges, geometry, deviations):
     response : kinkfit.response.RidgeResponse
     deviations : kinkfit.deviations.Deviations
     """
-    import math
-    from dataclasses import replace as dc_replace
+    from dataclasses import replace
 
     from .deviations import estimate_emission, fit_emission
     from .response import build_ridge_response
@@ -281,7 +280,7 @@ def forward_response(cube, ridges, geometry, deviations):
                                     node_stride=stride)
     observed = response.observed
     bias = deviations.offset_raw_arcsec - observed
-    dev = dc_replace(
+    dev = replace(
         deviations, offset_arcsec=observed, bias_arcsec=bias,
         distance_arcsec=deviations.distance_arcsec
         + deviations.bias_arcsec - bias,

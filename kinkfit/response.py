@@ -320,8 +320,10 @@ def build_ridge_response(cube, ridges, geom, emission, *, background=None,
     ui = -np.ones(flat.size, dtype=int)
     ui[keep_u] = np.arange(int(keep_u.sum()))
     a_r, a_phi, _ = projection_coefficients(geom, phi_f[keep_u])
-    Q = max(int(np.max([np.sum(keep_u[np.searchsorted(flat, nl)])
-                        for nl in node_lists])), 1)
+    # each point's nodes as positions in `flat`, front-layer nodes only
+    pos_lists = [p[keep_u[p]] for p in
+                 (np.searchsorted(flat, nl) for nl in node_lists)]
+    Q = max(max(p.size for p in pos_lists), 1)
 
     node_index = np.zeros((n, Q), dtype=np.int64)
     weight = np.zeros((n, M, Q))
@@ -337,8 +339,7 @@ def build_ridge_response(cube, ridges, geom, emission, *, background=None,
     img_cache = {}
     data_cache = {}
     for i in range(n):
-        pos = np.searchsorted(flat, node_lists[i])
-        pos = pos[keep_u[pos]]
+        pos = pos_lists[i]
         q = pos.size
         k = chan[i]
         nsi = ns[i]
