@@ -31,10 +31,10 @@ FRONT = parse_config(config_text(surfaces=("front",))).trace
 
 
 def front_only(pert):
-    """The perturbation on the front layer only (``z > 0``): the response
-    models the front layer's kink and ignores the back layer's own
-    (docs/physics/response.md); with the generator's back/front ratio of 0.5
-    the back layer's kink adds ~8% to a uniform flow's traced shift."""
+    """The perturbation on the front layer only (``z > 0``), for the
+    response built with ``back_layer=False`` (the front layer's kink
+    alone); both layers are checked in
+    :func:`test_back_layer_kink_matches_generator`."""
     def f(r, phi, z):
         out = pert(r, phi, z)
         on = np.asarray(z) > 0
@@ -70,7 +70,7 @@ def clean_case():
     _, clean, _, em = make_case(geom, peak_snr=50.0, seed=3, npix=112,
                                 nchan=36)
     ridges = trace_ridges(clean, geom, FRONT)
-    resp = build_ridge_response(clean, ridges, geom, em)
+    resp = build_ridge_response(clean, ridges, geom, em, back_layer=False)
     return geom, clean, ridges, resp, em
 
 
@@ -146,3 +146,38 @@ def test_fit_emission_recovers_the_generator_line_width_and_back_ratio():
             em_true.line_sigma_kms(r), rel=0.03), r
     # the generator's back/front ratio, not the estimate's default
     assert fitted.back_ratio == pytest.approx(em_true.back_ratio, abs=0.05)
+
+
+@pytest.mark.parametrize("kind", ["uniform", "blob"])
+def test_back_layer_kink_matches_generator(clean_case, kind):
+    # the generator moves both layers (kinkfit.synth.make_cube applies the
+    # perturbation to every sub-pixel of each layer); the response with
+    # back_layer=True must follow the tracer on that cube, and the
+    # front-only response must not (the back layer's own kink seen through
+    # the front layer; oracle: the generator's cube traced at the same cuts)
+    geom, clean, ridges, _, em = clean_case
+    dev = measure_deviations(ridges, geom)
+    if kind == "uniform":
+        pert = lambda r, phi, z: (np.full_like(r, 0.03), np.zeros_like(r),  # noqa: E731
+                                  np.zeros_like(r))
+    else:
+        centre = np.argsort(dev.r_au)[len(ridges) // 2]
+        pert = gaussian_blob(float(dev.r_au[centre]),
+                             float(dev.phi_rad[centre]), 0.12, 12.0)
+    _, pert_cube, _, _ = make_case(geom, peak_snr=50.0, seed=3, npix=112,
+                                   nchan=36, perturbation=pert)
+    traced, both = _traced_kinks(pert_cube, ridges, geom, em)
+    assert both.meta["back_layer"] and both.n_nodes > both.meta["n_front_nodes"]
+    dvr, dvp, _ = pert(both.node_r_au, both.node_phi_rad,
+                       np.ones_like(both.node_r_au))
+    model = both.offsets((both.node_a_r * dvr + both.node_a_phi * dvp)[None])[0]
+    front = build_ridge_response(clean, ridges, geom, em, back_layer=False)
+    front_model = front.offsets(_node_dv_los(front, front_only(pert))[None])[0]
+    sig = np.abs(traced) > (0.0 if kind == "uniform" else 0.002)
+    assert sig.sum() >= 4
+    t, mb, mf = traced[sig], model[sig], front_model[sig]
+    slope = np.sum(t * mb) / np.sum(mb ** 2)
+    assert slope == pytest.approx(1.0, abs=0.03)
+    rms_both = np.sqrt(np.mean((t - mb) ** 2))
+    rms_front = np.sqrt(np.mean((t - mf) ** 2))
+    assert rms_both < 0.5 * rms_front
