@@ -35,9 +35,13 @@ d(first-order offset)/ds at the point; without a planet the model kink is
 exactly zero and the beam-smearing bias is built in.
 
 Everything but ``dv`` at the nodes is precomputed once per fit; an
-evaluation costs one wake-model call at the nodes, ``m * sum_i Q_i`` error
-functions and one batched product (``m`` walkers).  The wake is applied to
-the front layer only (the back layer's own kink is ignored).
+evaluation costs one wake-model call at the nodes and, per walker, two error
+functions per distinct (node, channel) pair, the weighted sums and the soft
+maxima: :meth:`RidgeResponse.peaks` runs them in one compiled loop
+(:func:`_peaks_kernel`) over a compact layout of the pairs
+(:func:`_compact_layout`); :meth:`RidgeResponse.peaks_reference` is the plain
+numpy form it is tested against.  The wake is applied to the front layer only
+(the back layer's own kink is ignored).
 """
 
 from __future__ import annotations
@@ -47,6 +51,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
+from numba import njit
 from scipy import ndimage
 from scipy.special import erf
 
@@ -144,8 +149,75 @@ class RidgeResponse:
                                                 self.hi, self.scale)
         return self._phi0_cache
 
+    def _layout(self):
+        if not hasattr(self, "_layout_cache"):
+            self._layout_cache = _compact_layout(self)
+        return self._layout_cache
+
     def peaks(self, dv_los_nodes: np.ndarray) -> np.ndarray:
-        """Predicted peak positions along the cuts.
+        """Predicted peak positions along the cuts (compiled).
+
+        The same quantity as :meth:`peaks_reference`, evaluated in one
+        compiled loop per walker (:func:`_peaks_kernel`): the channel
+        profiles once per distinct (node, channel) pair, the weighted sum
+        and the soft maximum per point, without (m, n, M, Q) temporaries.
+        Equal to the reference to round-off (the summation order differs).
+
+        Parameters
+        ----------
+        dv_los_nodes : ndarray, shape (m, u)
+            Line-of-sight velocity excess of the wake at the nodes, km/s.
+
+        Returns
+        -------
+        ndarray, shape (m, n)
+            Peak positions, arcsec along each cut.
+        """
+        dv = np.ascontiguousarray(np.atleast_2d(np.asarray(dv_los_nodes,
+                                                           dtype=float)))
+        return self._run_kernel(dv, dv, False)
+
+    def peaks_from_wake(self, dv_r_nodes: np.ndarray,
+                        dv_phi_nodes: np.ndarray) -> np.ndarray:
+        """:meth:`peaks` of the wake's ``(dv_r, dv_phi)`` at the nodes.
+
+        The line-of-sight projection ``dv_los = a_r dv_r + a_phi dv_phi``
+        (``node_a_r``, ``node_a_phi``) is done inside the kernel, node by
+        node, with the same arithmetic (no (m, u) temporaries).
+
+        Parameters
+        ----------
+        dv_r_nodes, dv_phi_nodes : ndarray, shape (m, u)
+            Radial and azimuthal velocity excess at the nodes, km/s.
+
+        Returns
+        -------
+        ndarray, shape (m, n)
+            Peak positions, arcsec along each cut.
+        """
+        dr = np.ascontiguousarray(np.atleast_2d(np.asarray(dv_r_nodes,
+                                                           dtype=float)))
+        dp = np.ascontiguousarray(np.atleast_2d(np.asarray(dv_phi_nodes,
+                                                           dtype=float)))
+        if dr.shape != dp.shape:
+            raise ValueError(f"dv_r {dr.shape} and dv_phi {dp.shape} differ")
+        return self._run_kernel(dr, dp, True)
+
+    def _run_kernel(self, dr, dp, project):
+        if dr.shape[1] != self.n_nodes:
+            raise ValueError(f"the wake is given at {dr.shape[1]} nodes, the "
+                             f"response has {self.n_nodes}")
+        lay = self._layout()
+        out = np.empty((dr.shape[0], self.n_points))
+        _peaks_kernel(dr, dp, lay["a_r"], lay["a_phi"], project, lay["node"],
+                      lay["v"], lay["s2"], lay["lo"], lay["hi"], lay["scale"],
+                      lay["phi0"], lay["ptr"], lay["pair"], lay["w"],
+                      lay["f0"], lay["s_grid"], lay["inner"],
+                      float(PEAK_SHARPNESS), out)
+        return out
+
+    def peaks_reference(self, dv_los_nodes: np.ndarray) -> np.ndarray:
+        """:meth:`peaks` in plain numpy, walker by walker (the reference).
 
         Parameters
         ----------
@@ -170,13 +242,183 @@ class RidgeResponse:
         return out
 
     def offsets(self, dv_los_nodes: np.ndarray) -> np.ndarray:
-        """Model kinks ``kappa (s - s0)``, arcsec, shape (m, n)."""
-        return self.kappa[None, :] * (self.peaks(dv_los_nodes) - self.s0[None, :])
+        """Model kinks ``kappa (s - s0)``, arcsec, shape (m, n).
+
+        ``s0`` is taken as the kernel computes it (:func:`_compact_layout`),
+        equal to ``self.s0`` to round-off: without a wake the kink is then
+        exactly 0.
+        """
+        s0 = self._layout()["s0"]
+        return self.kappa[None, :] * (self.peaks(dv_los_nodes) - s0[None, :])
+
+    def offsets_reference(self, dv_los_nodes: np.ndarray) -> np.ndarray:
+        """:meth:`offsets` from :meth:`peaks_reference` and ``self.s0``."""
+        return self.kappa[None, :] * (self.peaks_reference(dv_los_nodes)
+                                      - self.s0[None, :])
+
+    def offsets_from_wake(self, dv_r_nodes: np.ndarray,
+                          dv_phi_nodes: np.ndarray) -> np.ndarray:
+        """:meth:`offsets` of the wake's ``(dv_r, dv_phi)`` at the nodes
+        (projected inside the kernel, :meth:`peaks_from_wake`), arcsec,
+        shape (m, n)."""
+        s0 = self._layout()["s0"]
+        return self.kappa[None, :] * (self.peaks_from_wake(
+            dv_r_nodes, dv_phi_nodes) - s0[None, :])
 
     def __getstate__(self):
         state = dict(self.__dict__)
         state.pop("_phi0_cache", None)
+        state.pop("_layout_cache", None)
         return state
+
+
+def _compact_layout(resp: RidgeResponse) -> dict:
+    """Compact arrays of a response for :func:`_peaks_kernel`.
+
+    The (point, node) pairs of ``resp`` (padding dropped: the pairs whose
+    profile scale and weights are all zero) are grouped by their distinct
+    (node, background velocity, line width, channel bounds, scale): the
+    channel profile of such a group is the same number for every point that
+    uses it, so it is evaluated once per walker.  Per point the pairs are
+    listed contiguously (``ptr``, ``pair``) with their weight rows ``w``
+    (pair entry, sample).
+    """
+    n, Q = resp.node_index.shape
+    weight = np.asarray(resp.weight, float)
+    real = (np.asarray(resp.scale) != 0) | np.any(weight != 0, axis=1)
+    ii, qq = np.nonzero(real)                     # row-major: point by point
+    key = np.column_stack([resp.node_index[ii, qq].astype(float),
+                           resp.v_bg[ii, qq], resp.s2[ii, qq],
+                           resp.lo[ii, qq], resp.hi[ii, qq],
+                           resp.scale[ii, qq]])
+    uniq, inverse = np.unique(key, axis=0, return_inverse=True)
+    inverse = np.asarray(inverse).ravel()
+    ptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(np.bincount(ii, minlength=n), out=ptr[1:])
+    inner = np.ascontiguousarray(resp.inner, dtype=np.bool_)
+    lay = {"node": np.ascontiguousarray(uniq[:, 0].astype(np.int64)),
+           "v": np.ascontiguousarray(uniq[:, 1]),
+           "s2": np.ascontiguousarray(uniq[:, 2]),
+           "lo": np.ascontiguousarray(uniq[:, 3]),
+           "hi": np.ascontiguousarray(uniq[:, 4]),
+           "scale": np.ascontiguousarray(uniq[:, 5]),
+           "ptr": ptr, "pair": np.ascontiguousarray(inverse, dtype=np.int64),
+           "w": np.ascontiguousarray(weight[ii, :, qq]),     # (entries, M)
+           "f0": np.ascontiguousarray(resp.f0, dtype=float),
+           "s_grid": np.ascontiguousarray(resp.s_grid, dtype=float),
+           "inner": inner,
+           "a_r": np.ascontiguousarray(resp.node_a_r, dtype=float),
+           "a_phi": np.ascontiguousarray(resp.node_a_phi, dtype=float)}
+    lay["phi0"] = _profile_values(lay["v"], lay["s2"], lay["lo"], lay["hi"],
+                                  lay["scale"])
+    # the background peak s0 as the kernel computes it (its sums run in
+    # another order than numpy's: ~1e-17 arcsec apart), so that a zero wake
+    # gives exactly zero kinks; where the builder replaced a failed peak
+    # (s0 = 0) the builder's value is kept
+    zero = np.zeros((1, resp.n_nodes))
+    s0k = np.empty((1, n))
+    _peaks_kernel(zero, zero, lay["a_r"], lay["a_phi"], False, lay["node"],
+                  lay["v"], lay["s2"], lay["lo"], lay["hi"], lay["scale"],
+                  lay["phi0"], lay["ptr"], lay["pair"], lay["w"], lay["f0"],
+                  lay["s_grid"], lay["inner"], float(PEAK_SHARPNESS), s0k)
+    s0 = np.asarray(resp.s0, float)
+    same = np.abs(s0k[0] - s0) <= 1e-12 * np.maximum(np.abs(s0), 1e-3)
+    lay["s0"] = np.where(same, s0k[0], s0)
+    return lay
+
+
+@njit(cache=True)
+def _profile_values(v, s2, lo, hi, scale):  # pragma: no cover - compiled
+    """``_channel_profile`` element by element with ``math.erf`` (the
+    kernel's own error function, so that a zero excess gives exactly 0)."""
+    out = np.empty(v.size)
+    for p in range(v.size):
+        out[p] = scale[p] * (math.erf((hi[p] - v[p]) / s2[p])
+                             - math.erf((lo[p] - v[p]) / s2[p]))
+    return out
+
+
+@njit(cache=True)
+def _peaks_kernel(dr, dp, a_r, a_phi, project, node, v, s2, lo, hi, scale,
+                  phi0, ptr, pair, w, f0, s_grid, inner, sharpness,
+                  out):  # pragma: no cover - compiled
+    """Soft-maximum peak of every (walker, point) into ``out`` (m, n).
+
+    The excess at node ``u`` is ``dr[k, u]`` (``project`` false) or
+    ``dr[k, u] a_r[u] + dp[k, u] a_phi[u]`` (true).  First the change of
+    the channel profile of each distinct pair for every walker (0 without
+    evaluating it where the node's excess is exactly 0: the reference's
+    difference is exactly 0 there too); then, point by point, ``f = f0 +
+    sum_e w[e] dphi[pair[e]]`` for all walkers at once (each weight row is
+    read once per call, not once per walker: the weights are megabytes) and
+    :func:`_soft_peak` of it over the inner samples (same formula, NaN where
+    it has none).
+    """
+    m = dr.shape[0]
+    npair = node.shape[0]
+    n = f0.shape[0]
+    M = f0.shape[1]
+    dphi = np.empty((npair, m))
+    for p in range(npair):
+        u = node[p]
+        vp = v[p]
+        hp = hi[p]
+        lp = lo[p]
+        sp = s2[p]
+        cp = scale[p]
+        pp = phi0[p]
+        for k in range(m):
+            if project:
+                d = dr[k, u] * a_r[u] + dp[k, u] * a_phi[u]
+            else:
+                d = dr[k, u]
+            if d == 0.0:
+                dphi[p, k] = 0.0
+            else:
+                v0 = vp + d
+                dphi[p, k] = cp * (math.erf((hp - v0) / sp)
+                                   - math.erf((lp - v0) / sp)) - pp
+    acc = np.empty((m, M))
+    for i in range(n):
+        # all M rows (fixed-length loops over row views vectorise; the rows
+        # where no peak may be taken are computed and ignored)
+        f0i = f0[i]
+        for k in range(m):
+            ak = acc[k]
+            for r in range(M):
+                ak[r] = 0.0
+        for e in range(ptr[i], ptr[i + 1]):
+            pe = pair[e]
+            we = w[e]
+            for k in range(m):
+                dpe = dphi[pe, k]
+                ak = acc[k]
+                for r in range(M):
+                    ak[r] += we[r] * dpe
+        for k in range(m):
+            ak = acc[k]
+            top = -np.inf
+            bad = False
+            for r in range(M):
+                if inner[i, r]:
+                    ak[r] = f0i[r] + ak[r]
+                    if ak[r] > top:
+                        top = ak[r]
+                    elif not (ak[r] <= top):
+                        bad = True          # NaN (np.max propagates it)
+            if bad or not (abs(top) < np.inf):
+                out[k, i] = np.nan          # also: no inner sample
+                continue
+            sc = abs(top) if abs(top) > 0 else 1.0
+            tot = 0.0
+            num = 0.0
+            for r in range(M):
+                if inner[i, r]:
+                    wt = math.exp(sharpness * (ak[r] - top) / sc)
+                    tot += wt
+                    num += wt * s_grid[i, r]
+            out[k, i] = num / tot if tot > 0 else np.nan
+    return 0
 
 
 def _soft_peak(f, s_grid, inner, sharpness=None):

@@ -262,3 +262,30 @@ def test_background_nuisance_equals_the_gaussian_marginal(rng):
     c = KinkLikelihood(model=standin_model, param_set=ps, **d2,
                        nuisance=(J, prec * 1e-6)).log_likelihood(theta[:1])
     assert a[0] == pytest.approx(c[0], abs=1e-6)
+
+
+def test_background_nuisance_with_eight_correlated_parameters(rng):
+    """The pipeline's size of nuisance (the eight background parameters of
+    kinkfit.diskfit, with a correlated prior) over a batch of samples: each
+    sample's value is the linear-Gaussian marginal N(r; 0, C + J P^-1 J^T)
+    (Bishop 2006, eq. 2.115) from scipy.stats.multivariate_normal, less the
+    dropped constant 0.5 ln det P."""
+    d = standin_data(rng)
+    ps = standin_params()
+    n = d["r_au"].size
+    J = rng.normal(scale=0.02, size=(n, 8))
+    L = np.tril(rng.normal(scale=0.3, size=(8, 8))) + np.diag(np.full(8, 1.5))
+    cov_g = L @ L.T                       # prior covariance of dg
+    prec = np.linalg.inv(cov_g)
+    lik = KinkLikelihood(model=standin_model, param_set=ps, **d,
+                         nuisance=(J, prec))
+    theta = _theta(ps, 16, rng)
+    got = lik.log_likelihood(theta)
+    pred = _expected_offsets(d, theta, ps)
+    jit = ps.unpack(theta)["jitter"]
+    const = 0.5 * np.linalg.slogdet(prec)[1]
+    for k in range(len(theta)):
+        cov = np.diag(d["sigma_arcsec"] ** 2 + jit[k] ** 2) + J @ cov_g @ J.T
+        want = stats.multivariate_normal(mean=pred[k], cov=cov).logpdf(
+            d["offset_arcsec"])
+        assert got[k] + const == pytest.approx(want, rel=1e-9, abs=1e-8)

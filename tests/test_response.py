@@ -181,3 +181,148 @@ def test_back_layer_kink_matches_generator(clean_case, kind):
     rms_both = np.sqrt(np.mean((t - mb) ** 2))
     rms_front = np.sqrt(np.mean((t - mf) ** 2))
     assert rms_both < 0.5 * rms_front
+
+
+# --------------------------------------------------------------------------
+# the compiled evaluation (RidgeResponse.peaks / peaks_from_wake) against an
+# independent evaluation of the documented formulas and against the numpy
+# reference (RidgeResponse.peaks_reference)
+# --------------------------------------------------------------------------
+
+def _random_response(rng, n=7, Q=9, M=11, u=25):
+    """A response of random numbers with the builder's padding conventions:
+    per point ``q_i <= Q`` real pairs (a node may appear in several points,
+    in the same or another channel), zero weights beyond ``nk_i <= M``
+    samples, a contiguous run of inner samples."""
+    node_index = np.zeros((n, Q), dtype=np.int64)
+    weight = np.zeros((n, M, Q))
+    v_bg = np.zeros((n, Q))
+    s2 = np.ones((n, Q))
+    lo = np.zeros((n, Q))
+    hi = np.ones((n, Q))
+    scale = np.zeros((n, Q))
+    inner = np.zeros((n, M), dtype=bool)
+    v_node = rng.uniform(-0.6, 0.6, u)
+    s2_node = rng.uniform(0.15, 0.35, u)
+    width = 0.15
+    for i in range(n):
+        q = int(rng.integers(3, Q + 1))
+        nk = int(rng.integers(M - 3, M + 1))
+        centre = rng.choice([-0.15, 0.0, 0.15])       # the point's channel
+        nodes = rng.choice(u, q, replace=False)
+        node_index[i, :q] = nodes
+        v_bg[i, :q] = v_node[nodes]
+        s2[i, :q] = s2_node[nodes]
+        lo[i, :q], hi[i, :q] = centre - width / 2, centre + width / 2
+        scale[i, :q] = math.sqrt(math.pi) / 2 * s2[i, :q] / width
+        weight[i, :nk, :q] = rng.uniform(0.0, 1.0, (nk, q))
+        inner[i, 2:nk - 2] = True
+    s_grid = np.linspace(-0.2, 0.2, M)[None, :] + rng.normal(0, 0.01, (n, 1))
+    f0 = 3.0 * np.exp(-0.5 * (s_grid / 0.08) ** 2) + rng.uniform(0, 0.2, (n, M))
+    from kinkfit.response import RidgeResponse
+    return RidgeResponse(
+        node_r_au=rng.uniform(50, 150, u), node_phi_rad=rng.uniform(-3, 3, u),
+        node_a_r=rng.uniform(-0.6, 0.6, u), node_a_phi=rng.uniform(-0.6, 0.6, u),
+        node_index=node_index, weight=weight, v_bg=v_bg, s2=s2, lo=lo, hi=hi,
+        scale=scale, f0=f0, s_grid=s_grid, inner=inner, s_ref=np.zeros(n),
+        s_data=np.zeros(n), s0=rng.normal(0, 0.01, n),
+        kappa=rng.uniform(0.5, 1.5, n))
+
+
+def _peaks_oracle(resp, dv):
+    """Peaks from the formulas of docs/physics/response.md with
+    scipy.stats.norm: the channel-averaged Gaussian line
+    ``(Phi((hi - v)/sigma) - Phi((lo - v)/sigma)) sigma sqrt(2 pi) / width``
+    (the scale of the model is ``sqrt(pi)/2 s2/width``, ``s2 = sqrt2
+    sigma``) and the soft maximum ``sum s w / sum w``, ``w = exp(6 (F -
+    max F) / max F)`` over the inner samples; pair by pair, point by
+    point."""
+    from scipy import stats
+    m = dv.shape[0]
+    n, Q = resp.node_index.shape
+    out = np.empty((m, n))
+    for k in range(m):
+        for i in range(n):
+            f = resp.f0[i].copy()
+            for q in range(Q):
+                if resp.scale[i, q] == 0:
+                    continue
+                sig = resp.s2[i, q] / math.sqrt(2.0)
+                width = math.sqrt(math.pi) / 2 * resp.s2[i, q] / resp.scale[i, q]
+
+                def prof(v):
+                    return (stats.norm.cdf((resp.hi[i, q] - v) / sig)
+                            - stats.norm.cdf((resp.lo[i, q] - v) / sig)) \
+                        * sig * math.sqrt(2.0 * math.pi) / width
+                v = resp.v_bg[i, q]
+                f += resp.weight[i, :, q] * (prof(v + dv[k, resp.node_index[i, q]])
+                                             - prof(v))
+            sel = resp.inner[i]
+            top = f[sel].max()
+            w = np.exp(6.0 * (f[sel] - top) / abs(top))
+            out[k, i] = np.sum(w * resp.s_grid[i, sel]) / np.sum(w)
+    return out
+
+
+def test_compiled_peaks_equal_the_formula_and_the_numpy_reference(rng):
+    resp = _random_response(rng)
+    dv = rng.normal(0.0, 0.05, (4, resp.n_nodes))
+    dv[0] = 0.0                                   # no wake: the background peak
+    dv[1, :5] = 0.0                               # some nodes exactly unperturbed
+    got = resp.peaks(dv)
+    # oracle: scipy.stats.norm profiles (norm.cdf differences round
+    # differently from erf: 1e-10 relative)
+    np.testing.assert_allclose(got, _peaks_oracle(resp, dv), rtol=1e-10,
+                               atol=1e-13)
+    # the numpy reference (scipy.special.erf, einsum): equal to round-off
+    ref = resp.peaks_reference(dv)
+    np.testing.assert_allclose(got, ref, rtol=1e-12, atol=1e-15)
+    # a wake changes the peaks, and none is NaN
+    assert np.all(np.isfinite(got)) and np.any(np.abs(got[2] - got[0]) > 1e-4)
+
+
+def test_projection_inside_the_kernel_equals_dv_los(rng):
+    # dv_los = a_r dv_r + a_phi dv_phi (DEVELOPERS.md, Deviations), node by node
+    resp = _random_response(rng)
+    dr = rng.normal(0.0, 0.05, (3, resp.n_nodes))
+    dp = rng.normal(0.0, 0.05, (3, resp.n_nodes))
+    dv = dr * resp.node_a_r + dp * resp.node_a_phi
+    np.testing.assert_allclose(resp.offsets_from_wake(dr, dp),
+                               resp.kappa * (_peaks_oracle(resp, dv) - resp.s0),
+                               rtol=1e-10, atol=1e-13)
+    assert np.array_equal(resp.offsets_from_wake(dr, dp), resp.offsets(dv))
+    with pytest.raises(ValueError, match="nodes"):
+        resp.peaks(dv[:, :-1])
+
+
+def test_nan_excess_makes_only_its_points_nan(rng):
+    # the soft maximum of a profile with a NaN sample has no value (np.max
+    # propagates NaN, IEEE 754); points that do not use the node keep theirs
+    resp = _random_response(rng)
+    dv = rng.normal(0.0, 0.05, (1, resp.n_nodes))
+    bad = int(resp.node_index[0, 0])
+    dv[0, bad] = np.nan
+    got = resp.peaks(dv)[0]
+    uses = np.array([bad in resp.node_index[i][resp.scale[i] != 0]
+                     for i in range(resp.n_points)])
+    assert np.all(np.isnan(got[uses]))
+    assert np.all(np.isfinite(got[~uses]))
+
+
+def test_compiled_peaks_on_a_real_response_and_after_pickling(clean_case):
+    import pickle
+    _, _, _, resp, _ = clean_case
+    blob = front_only(gaussian_blob(float(np.median(resp.node_r_au)),
+                                    float(np.median(resp.node_phi_rad)), 0.12, 12.0))
+    dv = np.stack([_node_dv_los(resp, blob), 0.5 * _node_dv_los(resp, blob)])
+    got = resp.peaks(dv)
+    ref = resp.peaks_reference(dv)
+    ok = np.isfinite(ref)
+    assert np.array_equal(ok, np.isfinite(got)) and ok.sum() > 10
+    np.testing.assert_allclose(got[ok], ref[ok], rtol=1e-12, atol=1e-15)
+    # the response sent to worker processes: its caches are not pickled and
+    # are rebuilt there, with the same numbers
+    state = resp.__getstate__()
+    assert "_layout_cache" not in state and "_phi0_cache" not in state
+    again = pickle.loads(pickle.dumps(resp))
+    assert np.array_equal(again.peaks(dv), got, equal_nan=True)
