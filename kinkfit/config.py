@@ -131,6 +131,10 @@ _SCHEMA: dict[str, tuple[_Field, ...]] = {
            doc="ridge points kept per beam FWHM along the ridge"),
         _f("debias", "bool", True,
            doc="remove beam-smearing bias with a traced background model"),
+        _f("max_sigma_beams", _Q, 0.15, unit="", low=0, open_low=True,
+           high=10.0,
+           doc="largest 1-sigma position error of a kept point, in beam "
+               "FWHM (docs/physics/tracing.md)"),
     ),
     "likelihood": (
         _f("kind", "choice", "gaussian", choices=("gaussian", "student-t"),
@@ -279,6 +283,8 @@ class TraceSettings:
     min_snr: float
     points_per_beam: float
     debias: bool
+    #: largest 1-sigma position error of a kept point, beam FWHM
+    max_sigma_beams: float = 0.15
 
 
 @dataclass(frozen=True)
@@ -591,7 +597,8 @@ def parse_config(text: str, path: str | Path | None = None) -> KinkfitConfig:
                               f"(expected front, back)", file=file,
                               key="trace.surfaces", value=s)
     trace = TraceSettings(tuple(t["surfaces"]), t["min_snr"],
-                          t["points_per_beam"], t["debias"])
+                          t["points_per_beam"], t["debias"],
+                          t["max_sigma_beams"])
     lk = _section(raw.get("likelihood", {}), "likelihood", file)
     likelihood = LikelihoodSettings(lk["kind"], lk["dof"], lk["kink_model"],
                                     lk["background_prior"])

@@ -25,7 +25,9 @@ Points are rejected (and counted by reason in ``Ridges.meta['rejected']``)
 when the cut leaves the cube or touches blanked pixels, leaves the emitting
 layer, crosses its own iso-velocity curve more than once, comes within a beam
 of the other surface's iso-velocity curve, peaks at the edge of the window,
-or peaks below ``min_snr``.
+peaks below ``min_snr``, or is located less precisely than
+``max_sigma_beams`` beam FWHM (config ``trace.max_sigma_beams``, default
+0.15; the reasoning is in the docs).
 
 Points kept about one beam FWHM apart along a ridge are treated as
 independent downstream; their noise correlation is ``exp(-d^2 / (4 s_b^2))``
@@ -54,6 +56,10 @@ log = logging.getLogger(__name__)
 
 #: Gaussian FWHM / sigma = 2 sqrt(2 ln 2) (PHYSICS.md section 2)
 FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
+
+#: default largest position error of a kept point, beam FWHM (the
+#: ``trace.max_sigma_beams`` default of :class:`kinkfit.config.TraceSettings`)
+_DEFAULT_MAX_SIGMA_BEAMS = 0.15
 
 #: integer code of each surface in :attr:`Ridges.surface`
 SURFACE_CODES = {"front": 0, "back": 1}
@@ -439,7 +445,8 @@ def _window_limits(v_own, v_other, v, grid, cx, cy, ux, uy, half, fwhm,
 
 def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
                  max_window_beams: float = 4.0, min_window_beams: float = 0.75,
-                 clearance_beams: float = 0.5, max_sigma_beams: float = 0.5,
+                 clearance_beams: float = 0.5,
+                 max_sigma_beams: float | None = None,
                  max_width_ratio: float | None = 2.0, edge_widths: float = 1.0,
                  channels=None,
                  cuts=None) -> Ridges:
@@ -453,7 +460,8 @@ def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
         Background disk that defines where to look (start geometry or a
         fitted one).
     settings : kinkfit.config.TraceSettings
-        ``surfaces`` (names), ``min_snr``, ``points_per_beam``.
+        ``surfaces`` (names), ``min_snr``, ``points_per_beam``,
+        ``max_sigma_beams``.
     window_beams : float
         Half length of each cut in beam FWHM, widened by twice the channel
         width over the local gradient (resolved ridges), capped at
@@ -470,10 +478,15 @@ def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
         a second crossing of its own curve.  The residual blending at this
         distance is part of the beam-smearing bias that
         :func:`kinkfit.deviations.estimate_smearing_bias` removes.
-    max_sigma_beams : float
+    max_sigma_beams : float, optional
         Points whose 1-sigma position error exceeds this (beam FWHM) are
-        dropped: broad, faint ridges carry little weight in any fit
-        (weight ~ sigma^-2) and their errors are the least Gaussian.
+        dropped (reason ``'imprecise'``).  Default: ``settings.
+        max_sigma_beams`` (config ``trace.max_sigma_beams``, 0.15).  The
+        choice and what it costs are argued in docs/physics/tracing.md
+        section 2: beyond ~0.15 beam the peak estimate leaves its linear
+        regime at low SNR (normalised scatter 1.2-1.8 on such points at
+        peak SNR 8) and a single point no longer resolves a kink of a
+        tenth of a beam.
     max_width_ratio : float or None
         Points whose ridge is wider than this times the width expected from
         the beam and the cube's median line width (``w_exp^2 = s_b^2 +
@@ -504,6 +517,9 @@ def trace_ridges(cube, geom, settings, *, window_beams: float = 1.5,
                               value=s)
     min_snr = float(settings.min_snr)
     ppb = float(settings.points_per_beam)
+    if max_sigma_beams is None:
+        max_sigma_beams = float(getattr(settings, "max_sigma_beams",
+                                        _DEFAULT_MAX_SIGMA_BEAMS))
     x, y, x0, dx, y0, dy = _grid(cube)
     grid = (x0, dx, y0, dy)
     pix = float(cube.pixel_arcsec)

@@ -28,13 +28,19 @@ def _true_offsets(geom, r):
     return off
 
 
-def _debiased_stats(peak_snr, seeds, **trace_kw):
+def _debiased_stats(peak_snr, seeds, settings=BOTH):
+    """Offsets of all traced points from the generator's true curves.
+
+    Returns the offsets after the smearing-bias correction, the same over
+    the reported sigmas, and the uncorrected offsets (arcsec), over every
+    point :func:`trace_ridges` returns for ``settings``.
+    """
     geom = truth_geometry()
     d_all, z_all, raw_all = [], [], []
     for seed in seeds:
         cube, _, _, _ = make_case(geom, peak_snr=peak_snr, seed=seed)
-        r = trace_ridges(cube, geom, BOTH, **trace_kw)
-        bias = estimate_smearing_bias(cube, r, geom, BOTH)   # estimated emission
+        r = trace_ridges(cube, geom, settings)
+        bias = estimate_smearing_bias(cube, r, geom, settings)  # estimated emission
         raw = _true_offsets(geom, r)
         d = raw - bias.offset_arcsec
         d_all.append(d)
@@ -43,15 +49,12 @@ def _debiased_stats(peak_snr, seeds, **trace_kw):
     return np.concatenate(d_all), np.concatenate(z_all), np.concatenate(raw_all)
 
 
-# The RMS bars are checked on the well-located points (sigma <= 0.15 beam,
-# the tracer's ``max_sigma_beams``); the error model on all default points.
+# The acceptance bars are checked on every point the tracer returns with its
+# default settings (quality rule trace.max_sigma_beams = 0.15 beam, argued in
+# docs/physics/tracing.md section 2); oracle: the generator's true
+# iso-velocity curves (kinkfit.synth geometry, truth_geometry()).
 @pytest.fixture(scope="module")
 def stats20():
-    return _debiased_stats(20.0, (11, 12), max_sigma_beams=0.15)
-
-
-@pytest.fixture(scope="module")
-def stats20_all():
     return _debiased_stats(20.0, (11, 12))
 
 
@@ -103,23 +106,40 @@ def test_position_sigma_monte_carlo(rng):
     assert np.std(peaks) == pytest.approx(pred, rel=0.15)
 
 
-def test_accuracy_snr20(stats20, stats20_all):
+def test_accuracy_snr20(stats20):
     d, z, _ = stats20
-    # acceptance: RMS distance from the true curves <= 0.1 beam at peak SNR 20
-    # after the bias handling (oracle: generator geometry)
+    assert d.size > 200                       # both seeds, both surfaces
+    # acceptance (issue 5): RMS distance from the true iso-velocity curves
+    # <= 0.1 beam FWHM at peak SNR 20 after the bias handling, over ALL
+    # returned points (oracle: generator geometry)
     assert np.sqrt(np.mean(d ** 2)) <= 0.1 * BEAM
-    # normalised residual scatter 0.8-1.25 (validates the sigma model),
-    # on the precise subset and on all default points
+    # the reported sigmas match the scatter: normalised std 0.8-1.25
     assert 0.8 <= np.std(z) <= 1.25
-    _, z_all, _ = stats20_all
-    assert z_all.size > z.size
-    assert 0.8 <= np.std(z_all) <= 1.25
 
 
 def test_accuracy_snr8():
-    d, z, _ = _debiased_stats(8.0, (21, 22), max_sigma_beams=0.15)
+    d, z, _ = _debiased_stats(8.0, (21, 22, 23))
+    assert d.size > 80
+    # acceptance (issue 5): <= 0.25 beam at peak SNR 8, all returned points
     assert np.sqrt(np.mean(d ** 2)) <= 0.25 * BEAM
     assert 0.8 <= np.std(z) <= 1.25
+
+
+def test_quality_rule_is_the_config_key(stats20):
+    # every returned point obeys trace.max_sigma_beams; a looser rule keeps
+    # the broad, faint ridges, whose sigma model must still match their
+    # scatter against the generator's true curves at peak SNR 20
+    d, _, _ = stats20
+    geom = truth_geometry()
+    cube, _, _, _ = make_case(geom, peak_snr=20.0, seed=11)
+    r = trace_ridges(cube, geom, BOTH)
+    assert np.all(r.sigma_arcsec <= BOTH.max_sigma_beams * r.beam_fwhm_arcsec)
+    assert r.meta["max_sigma_beams"] == BOTH.max_sigma_beams
+    loose = dataclasses.replace(BOTH, max_sigma_beams=0.5)
+    d5, z5, _ = _debiased_stats(20.0, (11, 12), settings=loose)
+    assert d5.size > 1.3 * d.size
+    assert np.sqrt(np.mean(d5 ** 2)) > np.sqrt(np.mean(d ** 2))
+    assert 0.8 <= np.std(z5) <= 1.25
 
 
 def test_bias_handling_helps(stats20):
