@@ -1,11 +1,13 @@
 """Cost of one planet log-probability with the forward kink model (demo).
 
-    python bench/bench_forward.py [--repeat 15] [--no-cache]
+    python bench/bench_forward.py [--repeat 15] [--stride 1] [--no-cache]
 
 Builds the demo's forward likelihood once -- the demo cube traced with the
 true geometry (no background fit), the ridge response
-(:func:`kinkfit.response.build_ridge_response`, node stride 2 as
-``pipeline.forward_response``) with the generator's emission profile, the
+(:func:`kinkfit.response.build_ridge_response` with the node options of
+``pipeline.forward_response``: front-layer nodes on every pixel, back-layer
+nodes on every 2nd; ``--stride 2`` for every 2nd front pixel) with the
+generator's emission profile, the
 viscous wake emulator, and a background-disk nuisance like the pipeline's
 (:func:`kinkfit.diskfit.offset_jacobian` at the true geometry, prior widths
 3 x the default parameter scales of :data:`kinkfit.diskfit.PARAMETERS`) --
@@ -22,8 +24,10 @@ each part, the reference ("before") path and the current one side by side:
   the marginalised nuisance): the total minus the parts above;
 * total: ``KinkLikelihood.log_prob`` itself.
 
-Timings are the best of ``--repeat`` interleaved calls (old, new, old, ...)
-on this shared 2-core machine; compare them side by side only.  Also prints
+Timings are the best CPU time of ``--repeat`` interleaved calls (old, new,
+old, ...) on this shared 2-core machine (other jobs still compete for the
+caches: absolute numbers move by ~50% between runs); compare them side by
+side only.  Also prints
 the largest differences between the two paths on 400 walkers (offsets in
 arcsec, log-probability in nats) and the compile time of the kernel.
 """
@@ -46,7 +50,7 @@ import numpy as np  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "configs" / "demo.toml"
-CACHE = Path("/tmp") / "kinkfit_bench_forward.pkl"
+CACHE = Path("/tmp") / "kinkfit_bench_forward_{stride}.pkl"
 BATCHES = (1, 6, 24, 48)
 
 
@@ -58,7 +62,7 @@ def _fingerprint(cfg) -> str:
                           ).hexdigest()
 
 
-def build(use_cache=True):
+def build(stride=1, use_cache=True):
     """The demo's traced data, ridge response and nuisance (cached)."""
     from kinkfit.config import load_config
     from kinkfit.diskfit import DEFAULT_FREE, PARAMETERS, _get, offset_jacobian
@@ -68,20 +72,23 @@ def build(use_cache=True):
 
     cfg = load_config(DEMO)
     key = _fingerprint(cfg)
-    if use_cache and CACHE.exists():
+    cache = Path(str(CACHE).format(stride=stride))
+    if use_cache and cache.exists():
         try:
-            with open(CACHE, "rb") as fh:
+            with open(cache, "rb") as fh:
                 got = pickle.load(fh)
             if got.get("key") == key:
-                print(f"built objects read from {CACHE}")
+                print(f"built objects read from {cache}")
                 return cfg, got
         except Exception as exc:  # a stale or partial cache: rebuild
-            print(f"cache {CACHE} not used ({exc})")
+            print(f"cache {cache} not used ({exc})")
     t0 = time.perf_counter()
     cube = load_cube(cfg)
     ridges, _, dev = run_trace(cfg, cube=cube, fit_background=False)
     geom, emission = cfg.geometry(), line_emission(cfg)
-    resp = build_ridge_response(cube, ridges, geom, emission, node_stride=2)
+    resp = build_ridge_response(cube, ridges, geom, emission,
+                                node_stride=stride, back_layer=True,
+                                back_stride=2)
     fit = types.SimpleNamespace(
         geometry=geom, names=DEFAULT_FREE,
         values=np.array([_get(geom, n) for n in DEFAULT_FREE]),
@@ -91,10 +98,10 @@ def build(use_cache=True):
     got = {"key": key, "dev": dev, "resp": resp, "nuisance": (J, prec)}
     print(f"demo traced and response built in {time.perf_counter() - t0:.0f} s")
     if use_cache:
-        tmp = CACHE.with_suffix(".tmp")
+        tmp = cache.with_suffix(".tmp")
         with open(tmp, "wb") as fh:
             pickle.dump(got, fh)
-        os.replace(tmp, CACHE)
+        os.replace(tmp, cache)
     return cfg, got
 
 
@@ -146,14 +153,16 @@ class Precomputed:
 
 
 def _best_pair(fa, fb, repeat):
+    """Best CPU time (one thread: ``time.process_time``, not disturbed by
+    the other jobs' scheduling) of ``repeat`` interleaved calls each."""
     ta = tb = float("inf")
     for _ in range(repeat):
-        t0 = time.perf_counter()
+        t0 = time.process_time()
         fa()
-        ta = min(ta, time.perf_counter() - t0)
-        t0 = time.perf_counter()
+        ta = min(ta, time.process_time() - t0)
+        t0 = time.process_time()
         fb()
-        tb = min(tb, time.perf_counter() - t0)
+        tb = min(tb, time.process_time() - t0)
     return ta, tb
 
 
@@ -161,6 +170,8 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__,
                                  formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--repeat", type=int, default=15)
+    ap.add_argument("--stride", type=int, default=1,
+                    help="front-layer node stride (pipeline: 1)")
     ap.add_argument("--no-cache", action="store_true",
                     help=f"rebuild instead of reading {CACHE}")
     args = ap.parse_args(argv)
@@ -172,7 +183,7 @@ def main(argv=None):
     from kinkfit.scenario import wake_disk
     from kinkfit.wake.emulator import make_fit_model
 
-    cfg, got = build(use_cache=not args.no_cache)
+    cfg, got = build(args.stride, use_cache=not args.no_cache)
     dev, resp = got["dev"], got["resp"]
     geom = cfg.geometry()
     damping = cfg.synth.truth.damping
@@ -183,7 +194,8 @@ def main(argv=None):
                                               nuisance=got["nuisance"])
     old_like = reference_likelihood(dev, model, pset, response=ref,
                                     nuisance=got["nuisance"])
-    print(f"demo: {resp.n_points} points, {resp.n_nodes} nodes, "
+    print(f"demo: {resp.n_points} points, {resp.n_nodes} nodes "
+          f"(front stride {args.stride}, back stride 2), "
           f"{resp.meta['nodes_per_point_padded']} nodes per point (padded), "
           f"{resp.meta['samples_per_cut']} samples per cut; damping {damping}")
 
@@ -197,16 +209,17 @@ def main(argv=None):
     lay = resp._layout()
     t0 = time.perf_counter()
     z = np.zeros((1, resp.n_nodes))
-    fresh(z, z, lay["a_r"], lay["a_phi"], True, lay["node"], lay["v"],
-          lay["s2"], lay["lo"], lay["hi"], lay["scale"], lay["phi0"],
-          lay["ptr"], lay["pair"], lay["w"], lay["f0"], lay["s_grid"],
-          lay["inner"], 6.0,
+    fresh(z, z, lay["a_r"], lay["a_phi"], True, lay["e_node"], lay["e_v"],
+          lay["e_s2"], lay["e_x"], lay["e_erf0"], lay["p_lo"], lay["p_hi"],
+          lay["scale"], lay["phi0"], lay["ptr"], lay["pair"], lay["w"],
+          lay["f0"], lay["s_grid"], lay["inner"], 6.0,
           np.empty((1, resp.n_points)))
     compile_s = time.perf_counter() - t0
     print(f"peaks kernel: first call {first:.2f} s (layout + numba cache "
           f"load or compile), compile without the cache {compile_s:.2f} s; "
-          f"{lay['node'].size} distinct (node, channel) pairs for "
-          f"{lay['pair'].size} (point, node) pairs")
+          f"{lay['scale'].size} distinct (node, channel) pairs for "
+          f"{lay['pair'].size} (point, node) pairs, {lay['e_x'].size} "
+          f"distinct (node, channel edge) error functions")
 
     tr = cfg.synth.truth
     truth = {"mass": tr.mass_mjup, "radius": tr.radius_au,
@@ -219,7 +232,7 @@ def main(argv=None):
         th = base[None] * (1.0 + spread * rng.standard_normal((m, base.size)))
         return th
 
-    print("\nms per walker evaluation (best of %d interleaved calls; "
+    print("\nCPU ms per walker evaluation (best of %d interleaved calls; "
           "before | after)" % args.repeat)
     print(f"{'batch':>5} | {'emulator':>8} | {'projection':>15} | "
           f"{'peaks':>15} | {'likelihood':>15} | {'total log_prob':>23}")

@@ -207,13 +207,8 @@ class RidgeResponse:
         if dr.shape[1] != self.n_nodes:
             raise ValueError(f"the wake is given at {dr.shape[1]} nodes, the "
                              f"response has {self.n_nodes}")
-        lay = self._layout()
         out = np.empty((dr.shape[0], self.n_points))
-        _peaks_kernel(dr, dp, lay["a_r"], lay["a_phi"], project, lay["node"],
-                      lay["v"], lay["s2"], lay["lo"], lay["hi"], lay["scale"],
-                      lay["phi0"], lay["ptr"], lay["pair"], lay["w"],
-                      lay["f0"], lay["s_grid"], lay["inner"],
-                      float(PEAK_SHARPNESS), out)
+        _run(self._layout(), dr, dp, project, out)
         return out
 
     def peaks_reference(self, dv_los_nodes: np.ndarray) -> np.ndarray:
@@ -272,6 +267,11 @@ class RidgeResponse:
         return state
 
 
+#: channel edges of one node closer than this (km/s) are one edge: adjacent
+#: channels share an edge up to the rounding of ``v_k +- width/2``
+_EDGE_MERGE_KMS = 1e-12
+
+
 def _compact_layout(resp: RidgeResponse) -> dict:
     """Compact arrays of a response for :func:`_peaks_kernel`.
 
@@ -279,9 +279,13 @@ def _compact_layout(resp: RidgeResponse) -> dict:
     profile scale and weights are all zero) are grouped by their distinct
     (node, background velocity, line width, channel bounds, scale): the
     channel profile of such a group is the same number for every point that
-    uses it, so it is evaluated once per walker.  Per point the pairs are
-    listed contiguously (``ptr``, ``pair``) with their weight rows ``w``
-    (pair entry, sample).
+    uses it.  Its two error functions are those of its channel's edges, and
+    a node seen in adjacent channels shares an edge between them: the
+    distinct (node, edge) values (``e_*``; edges within
+    :data:`_EDGE_MERGE_KMS` merged, a change of the profile below 1e-14)
+    are evaluated once per walker, the pairs index them (``p_lo``,
+    ``p_hi``).  Per point the pairs are listed contiguously (``ptr``,
+    ``pair``) with their weight rows ``w`` (pair entry, sample).
     """
     n, Q = resp.node_index.shape
     weight = np.asarray(resp.weight, float)
@@ -293,14 +297,30 @@ def _compact_layout(resp: RidgeResponse) -> dict:
                            resp.scale[ii, qq]])
     uniq, inverse = np.unique(key, axis=0, return_inverse=True)
     inverse = np.asarray(inverse).ravel()
+    npair = uniq.shape[0]
+    # distinct (node, v, s2) and their edges
+    _, kid = np.unique(uniq[:, :3], axis=0, return_inverse=True)
+    kid = np.asarray(kid).ravel()
+    ek = np.concatenate([kid, kid])
+    ex = np.concatenate([uniq[:, 3], uniq[:, 4]])
+    order = np.lexsort((ex, ek))
+    new_edge = np.ones(order.size, dtype=bool)
+    new_edge[1:] = (np.diff(ek[order]) != 0) | \
+        (np.diff(ex[order]) > _EDGE_MERGE_KMS)
+    eid_sorted = np.cumsum(new_edge) - 1
+    eid = np.empty(order.size, dtype=np.int64)
+    eid[order] = eid_sorted
+    first = order[new_edge]                       # representative of each edge
+    src = np.concatenate([np.arange(npair), np.arange(npair)])[first]
     ptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(np.bincount(ii, minlength=n), out=ptr[1:])
     inner = np.ascontiguousarray(resp.inner, dtype=np.bool_)
-    lay = {"node": np.ascontiguousarray(uniq[:, 0].astype(np.int64)),
-           "v": np.ascontiguousarray(uniq[:, 1]),
-           "s2": np.ascontiguousarray(uniq[:, 2]),
-           "lo": np.ascontiguousarray(uniq[:, 3]),
-           "hi": np.ascontiguousarray(uniq[:, 4]),
+    lay = {"e_node": np.ascontiguousarray(uniq[src, 0].astype(np.int64)),
+           "e_v": np.ascontiguousarray(uniq[src, 1]),
+           "e_s2": np.ascontiguousarray(uniq[src, 2]),
+           "e_x": np.ascontiguousarray(ex[first]),
+           "p_lo": np.ascontiguousarray(eid[:npair]),
+           "p_hi": np.ascontiguousarray(eid[npair:]),
            "scale": np.ascontiguousarray(uniq[:, 5]),
            "ptr": ptr, "pair": np.ascontiguousarray(inverse, dtype=np.int64),
            "w": np.ascontiguousarray(weight[ii, :, qq]),     # (entries, M)
@@ -309,75 +329,87 @@ def _compact_layout(resp: RidgeResponse) -> dict:
            "inner": inner,
            "a_r": np.ascontiguousarray(resp.node_a_r, dtype=float),
            "a_phi": np.ascontiguousarray(resp.node_a_phi, dtype=float)}
-    lay["phi0"] = _profile_values(lay["v"], lay["s2"], lay["lo"], lay["hi"],
-                                  lay["scale"])
+    lay["e_erf0"] = _edge_values(lay["e_x"], lay["e_v"], lay["e_s2"])
+    lay["phi0"] = lay["scale"] * (lay["e_erf0"][lay["p_hi"]]
+                                  - lay["e_erf0"][lay["p_lo"]])
     # the background peak s0 as the kernel computes it (its sums run in
     # another order than numpy's: ~1e-17 arcsec apart), so that a zero wake
     # gives exactly zero kinks; where the builder replaced a failed peak
     # (s0 = 0) the builder's value is kept
     zero = np.zeros((1, resp.n_nodes))
     s0k = np.empty((1, n))
-    _peaks_kernel(zero, zero, lay["a_r"], lay["a_phi"], False, lay["node"],
-                  lay["v"], lay["s2"], lay["lo"], lay["hi"], lay["scale"],
-                  lay["phi0"], lay["ptr"], lay["pair"], lay["w"], lay["f0"],
-                  lay["s_grid"], lay["inner"], float(PEAK_SHARPNESS), s0k)
+    _run(lay, zero, zero, False, s0k)
     s0 = np.asarray(resp.s0, float)
     same = np.abs(s0k[0] - s0) <= 1e-12 * np.maximum(np.abs(s0), 1e-3)
     lay["s0"] = np.where(same, s0k[0], s0)
     return lay
 
 
+def _run(lay, dr, dp, project, out):
+    """:func:`_peaks_kernel` on a layout."""
+    _peaks_kernel(dr, dp, lay["a_r"], lay["a_phi"], project, lay["e_node"],
+                  lay["e_v"], lay["e_s2"], lay["e_x"], lay["e_erf0"],
+                  lay["p_lo"], lay["p_hi"], lay["scale"], lay["phi0"],
+                  lay["ptr"], lay["pair"], lay["w"], lay["f0"],
+                  lay["s_grid"], lay["inner"], float(PEAK_SHARPNESS), out)
+
+
 @njit(cache=True)
-def _profile_values(v, s2, lo, hi, scale):  # pragma: no cover - compiled
-    """``_channel_profile`` element by element with ``math.erf`` (the
-    kernel's own error function, so that a zero excess gives exactly 0)."""
-    out = np.empty(v.size)
-    for p in range(v.size):
-        out[p] = scale[p] * (math.erf((hi[p] - v[p]) / s2[p])
-                             - math.erf((lo[p] - v[p]) / s2[p]))
+def _edge_values(x, v, s2):  # pragma: no cover - compiled
+    """``erf((x - v) / s2)`` element by element with ``math.erf`` (the
+    kernel's own error function and arithmetic, so that a zero excess gives
+    exactly the background profile)."""
+    out = np.empty(x.size)
+    for e in range(x.size):
+        out[e] = math.erf((x[e] - (v[e] + 0.0)) / s2[e])
     return out
 
 
 @njit(cache=True)
-def _peaks_kernel(dr, dp, a_r, a_phi, project, node, v, s2, lo, hi, scale,
-                  phi0, ptr, pair, w, f0, s_grid, inner, sharpness,
-                  out):  # pragma: no cover - compiled
+def _peaks_kernel(dr, dp, a_r, a_phi, project, e_node, e_v, e_s2, e_x, e_erf0,
+                  p_lo, p_hi, scale, phi0, ptr, pair, w, f0, s_grid, inner,
+                  sharpness, out):  # pragma: no cover - compiled
     """Soft-maximum peak of every (walker, point) into ``out`` (m, n).
 
     The excess at node ``u`` is ``dr[k, u]`` (``project`` false) or
-    ``dr[k, u] a_r[u] + dp[k, u] a_phi[u]`` (true).  First the change of
-    the channel profile of each distinct pair for every walker (0 without
-    evaluating it where the node's excess is exactly 0: the reference's
-    difference is exactly 0 there too); then, point by point, ``f = f0 +
-    sum_e w[e] dphi[pair[e]]`` for all walkers at once (each weight row is
-    read once per call, not once per walker: the weights are megabytes) and
-    :func:`_soft_peak` of it over the inner samples (same formula, NaN where
-    it has none).
+    ``dr[k, u] a_r[u] + dp[k, u] a_phi[u]`` (true).  First the error
+    function of every distinct (node, edge) for every walker (not evaluated
+    where the node's excess is exactly 0: the background value), the change
+    of each distinct pair's channel profile ``scale (E_hi - E_lo) - phi0``
+    (exactly 0 without excess, as the reference's); then, point by point,
+    ``f = f0 + sum_e w[e] dphi[pair[e]]`` for all walkers at once (each
+    weight row is read once per call, not once per walker: the weights are
+    megabytes) and :func:`_soft_peak` of it over the inner samples (same
+    formula, NaN where it has none).
     """
     m = dr.shape[0]
-    npair = node.shape[0]
+    nedge = e_node.shape[0]
+    npair = scale.shape[0]
     n = f0.shape[0]
     M = f0.shape[1]
-    dphi = np.empty((npair, m))
-    for p in range(npair):
-        u = node[p]
-        vp = v[p]
-        hp = hi[p]
-        lp = lo[p]
-        sp = s2[p]
-        cp = scale[p]
-        pp = phi0[p]
+    E = np.empty((nedge, m))
+    for e in range(nedge):
+        u = e_node[e]
+        ve = e_v[e]
+        xe = e_x[e]
+        se = e_s2[e]
         for k in range(m):
             if project:
                 d = dr[k, u] * a_r[u] + dp[k, u] * a_phi[u]
             else:
                 d = dr[k, u]
             if d == 0.0:
-                dphi[p, k] = 0.0
+                E[e, k] = e_erf0[e]
             else:
-                v0 = vp + d
-                dphi[p, k] = cp * (math.erf((hp - v0) / sp)
-                                   - math.erf((lp - v0) / sp)) - pp
+                E[e, k] = math.erf((xe - (ve + d)) / se)
+    dphi = np.empty((npair, m))
+    for p in range(npair):
+        hp = p_hi[p]
+        lp = p_lo[p]
+        cp = scale[p]
+        pp = phi0[p]
+        for k in range(m):
+            dphi[p, k] = cp * (E[hp, k] - E[lp, k]) - pp
     acc = np.empty((m, M))
     for i in range(n):
         # all M rows (fixed-length loops over row views vectorise; the rows
