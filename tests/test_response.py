@@ -10,7 +10,11 @@ Oracles:
   perturbation, traced by the tracer: the response must predict what the
   tracer measures on it;
 * the generator's own emission parameters (analytic truth of a synthetic
-  observation) for :func:`kinkfit.deviations.fit_emission`.
+  observation) for :func:`kinkfit.deviations.fit_emission`;
+* for the compiled evaluation (``RidgeResponse.peaks``): the channel
+  profiles from ``scipy.stats.norm`` and the soft maximum of
+  docs/physics/response.md evaluated point by point, and the numpy
+  reference ``peaks_reference`` (scipy.special.erf, einsum) to round-off.
 """
 
 import math
