@@ -1,6 +1,7 @@
 """Wake emulator vs direct model, measured side by side (prints numbers; no assertions).
 
 Run: python bench/bench_emulator.py [--npts 3000] [--walkers 32] [--direct-walkers 8]
+     python bench/bench_emulator.py --nodes demo [--walkers 24] [--repeat 25]
 
 Rates are point evaluations (walkers x points) per second of *process CPU
 time* (one thread: numba and the direct model are single-threaded here), so
@@ -21,12 +22,24 @@ For each damping option:
 * error: max |emulator - direct| / peak |dv| per set, against the direct model
   exact in time (``_N_TIME`` raised above the number of points, so that each
   point is solved at its own time) and against its default.
+
+``--nodes demo``: the demo's forward-model nodes instead (the 6,239 disk
+positions of the ridge response of ``configs/demo.toml``, both emitting
+layers; built by ``bench/bench_forward.py`` and read from its pickle under
+/tmp), posterior-like walker clouds (``--walkers`` sets scattered 1 % around
+1.5 M_jup, 110 au, 40 deg, alpha 0.003) for damping none and viscous, and the
+emulator before and after the interior fast path (``_fast_interior`` False
+= every interior look-up through the general ``_eval_local``), timed
+interleaved in one process (best CPU time of ``--repeat`` calls each);
+also the largest difference between the two on clouds of 1 %, 10 % and 30 %.
 """
 
 import argparse
 import math
 import os
+import sys
 import time
+from pathlib import Path
 
 import numpy as np
 
@@ -82,12 +95,73 @@ def rel_errors(got, ref):
     return np.array(errs)
 
 
+def demo_nodes(args):
+    """Before/after on the demo's forward-model nodes (see the module docstring)."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    import bench_forward
+
+    from kinkfit.scenario import wake_disk
+
+    cfg, got = bench_forward.build(1)
+    resp = got["resp"]
+    r, phi = resp.node_r_au, resp.node_phi_rad
+    disk = wake_disk(cfg, mstar_msun=cfg.geometry().mstar_msun)
+    rng = np.random.default_rng(7)
+
+    def demo_cloud(m, kind, spread):
+        par = dict(mass=1.5 * (1 + spread * rng.standard_normal(m)),
+                   radius=110.0 * (1 + spread * rng.standard_normal(m)),
+                   azimuth=40.0 * (1 + spread * rng.standard_normal(m)),
+                   aspect_ratio=np.full(m, disk.aspect_p))
+        par["mass"] = np.abs(par["mass"])
+        par["radius"] = np.clip(par["radius"], disk.r_in_au + 5, disk.r_out_au - 5)
+        if kind == "viscous":
+            par["alpha"] = np.abs(0.003 * (1 + spread * rng.standard_normal(m)))
+        return par
+
+    m = args.walkers
+    x = np.abs(r / 110.0 - 1.0) / disk.aspect_p
+    print(f"demo forward-model nodes: {r.size} (r {r.min():.1f}-{r.max():.1f} au; "
+          f"{np.count_nonzero(x <= em.default_match_h(disk.aspect_p))} within x_match h_p "
+          f"of 110 au); {m} walkers scattered 1 % around 1.5 Mjup, 110 au, 40 deg, "
+          f"alpha 0.003; best CPU time of {args.repeat} interleaved calls")
+    print(f"{'damping':8s} {'before ms/walker':>16s} {'after ms/walker':>16s} {'speed-up':>9s} "
+          f"{'before /s/core':>15s} {'after /s/core':>14s} {'max |after - before| km/s':>26s}")
+    for kind in ("none", "viscous"):
+        new = em.make_fit_model(disk, kind)
+        old = em.make_fit_model(disk, kind, tables=new.tables)
+        old._fast_interior = False
+        worst = 0.0
+        for spread, mm in ((0.01, 200), (0.1, 200), (0.3, 200)):
+            par = demo_cloud(mm, kind, spread)
+            a, b = new(par, r, phi), old(par, r, phi)
+            worst = max(worst, float(np.abs(a[0] - b[0]).max()),
+                        float(np.abs(a[1] - b[1]).max()))
+        par = demo_cloud(m, kind, 0.01)
+        t_old = t_new = float("inf")
+        for _ in range(args.repeat):
+            t_old = min(t_old, timed(old, par, r, phi)[1])
+            t_new = min(t_new, timed(new, par, r, phi)[1])
+        print(f"{kind:8s} {t_old * 1e3 / m:16.3f} {t_new * 1e3 / m:16.3f} "
+              f"{t_old / t_new:8.2f}x {m * r.size / t_old:15.3g} {m * r.size / t_new:14.3g} "
+              f"{worst:26.2e}")
+    print("load average at end (1, 5, 15 min): %.2f %.2f %.2f" % os.getloadavg())
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--npts", type=int, default=3000)
     ap.add_argument("--walkers", type=int, default=32)
     ap.add_argument("--direct-walkers", type=int, default=8)
+    ap.add_argument("--nodes", choices=("random", "demo"), default="random",
+                    help="random points (default) or the demo's forward-model nodes")
+    ap.add_argument("--repeat", type=int, default=25, help="timed calls (--nodes demo)")
     args = ap.parse_args()
+    if args.nodes == "demo":
+        if "--walkers" not in sys.argv:
+            args.walkers = 24
+        print("load average at start (1, 5, 15 min): %.2f %.2f %.2f" % os.getloadavg())
+        return demo_nodes(args)
     rng = np.random.default_rng(5)
     print("load average at start (1, 5, 15 min): %.2f %.2f %.2f" % os.getloadavg())
 

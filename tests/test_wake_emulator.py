@@ -200,6 +200,40 @@ def test_vectorised_walkers_equal_single_calls(small_model, rng):
         np.testing.assert_array_equal(sp[0], vp[i])
 
 
+@pytest.mark.parametrize("kind", ["none", "viscous"])
+def test_fast_interior_path_equals_general_search(kind, rng):
+    """The interior look-ups through ``_local_fast`` (per-column scalars hoisted,
+    falling back to ``_eval_local``) give the values of the general local search
+    ``_eval_local`` for every look-up, to 1e-9 km/s (they take the same floating-
+    point steps, so in practice bit for bit).  ``_eval_local`` itself is checked
+    against :func:`kinkfit.wake.burgers.burgers_solution` (Hopf-Lax entropy
+    solution, W74 ch. 2) in ``test_profile_solution_*``; the whole emulator
+    against the direct model in ``test_accuracy_against_direct_model``.
+    Points: dense in the interior band (|x - 1| <= x_match h_p) where the path
+    is used, plus exterior ones; walkers both clustered (a posterior-like cloud)
+    and spread over the prior."""
+    disk = wm.WakeDisk(mstar_msun=1.0, aspect_p=0.1, q=0.25, r_in_au=20.0, r_out_au=300.0)
+    fast = em.make_fit_model(disk, kind)
+    ref = em.make_fit_model(disk, kind, tables=fast.tables)
+    ref._fast_interior = False
+    r = np.concatenate([rng.uniform(70.0, 140.0, 1500), rng.uniform(25.0, 290.0, 300)])
+    phi = rng.uniform(-np.pi, np.pi, r.size)
+    m = 12
+    wide = _walkers(disk, m, rng)
+    cloud = {k: np.repeat(v[:1], m) for k, v in wide.items()}
+    cloud["mass"] = cloud["mass"] * (1 + 0.01 * rng.standard_normal(m))
+    cloud["radius"] = cloud["radius"] * (1 + 0.01 * rng.standard_normal(m))
+    cloud["azimuth"] = cloud["azimuth"] + 0.5 * rng.standard_normal(m)
+    for par in (wide, cloud):
+        if kind == "none":
+            par = {k: v for k, v in par.items() if k != "alpha"}
+        fr, fp = fast(par, r, phi)
+        gr, gp = ref(par, r, phi)
+        assert np.max(np.abs(gr)) > 0.01        # the wake is there (km/s)
+        assert np.max(np.abs(fr - gr)) <= 1e-9
+        assert np.max(np.abs(fp - gp)) <= 1e-9
+
+
 def test_point_cache_follows_the_points(small_model, rng):
     # the per-point arrays are kept between calls with the same points; new points,
     # or the caller's array changed in place, must not reuse them (reference: a
