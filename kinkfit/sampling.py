@@ -168,16 +168,23 @@ def initial_ball(center, param_set: ParameterSet, nwalkers: int,
                                        zip(param_set.free, center, lo, hi)
                                        if not a <= c <= b),
                            key="initial", value=center.tolist())
-    p = np.clip(center + sd * rng.normal(size=(nwalkers, center.size)),
-                inner_lo, inner_hi)
+    def draw(k):
+        # reflected at the prior's edges, not clipped: a start on an edge
+        # (a jitter polished to its lower bound) would otherwise put half
+        # the walkers on one point, and the differential-evolution moves
+        # divide by the distance between two walkers (NaN proposals)
+        q = center + sd * rng.normal(size=(k, center.size))
+        q = np.where(q < inner_lo, 2.0 * inner_lo - q, q)
+        q = np.where(q > inner_hi, 2.0 * inner_hi - q, q)
+        return np.clip(q, inner_lo, inner_hi)
+
+    p = draw(nwalkers)
     if log_prob is not None:
         for _ in range(200):
             bad = ~np.isfinite(log_prob(p))
             if not bad.any():
                 break
-            p[bad] = np.clip(center + sd * rng.normal(size=(bad.sum(),
-                                                            center.size)),
-                             inner_lo, inner_hi)
+            p[bad] = draw(int(bad.sum()))
         else:
             raise KinkfitError("could not place the walkers where the "
                                "log-probability is finite around the start "

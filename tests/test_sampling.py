@@ -247,6 +247,11 @@ def test_initial_ball_inside_prior():
     p = initial_ball(centre, ps, 50, rng, scale=0.05)
     assert np.all(np.isfinite(ps.log_prior(p)))
     assert np.linalg.matrix_rank(p - p.mean(0)) == ps.ndim  # not degenerate
+    # no two walkers share a coordinate, even on an edge: emcee's
+    # differential-evolution snooker move divides by the distance between
+    # two walkers (identical walkers gave NaN proposals on a baseline fit
+    # whose jitter was polished to its lower bound)
+    assert all(np.unique(p[:, j]).size == len(p) for j in range(ps.ndim))
 
 
 def test_sigint_is_deferred_to_a_complete_step(tmp_path):
