@@ -1056,6 +1056,14 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
     CLO = np.zeros((m, nc))
     CHI = np.zeros((m, nc))
     CBG = np.zeros((m, nc))
+    NG = np.full((m, 2), -1, dtype=np.int64)
+    # interior points of one (block, walker), gathered before their look-ups
+    QO = np.empty(_PT_BLOCK, dtype=np.int64)
+    QJ = np.empty(_PT_BLOCK, dtype=np.int64)
+    QK = np.empty(_PT_BLOCK, dtype=np.int64)
+    QWX = np.empty(_PT_BLOCK)
+    QWS = np.empty(_PT_BLOCK)
+    QV = np.zeros((_PT_BLOCK, 4))
     c2 = 0.5 * (gam + 1.0)
     b = q - 0.5
     log_b = abs(b) < 1e-12
@@ -1156,6 +1164,7 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
                 ppw = phi_p[w]
                 cpw = cp[w]
                 amp_cp = A * cpw
+                nq = 0
                 for ii in range(blk, bend):
                     i = ii if pas == 0 else eperm[ii]
                     oi = order[i]
@@ -1187,6 +1196,15 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
                         if k > ns - 2:
                             k = ns - 2
                         ws = (sh - s_grid[k]) / (s_grid[k + 1] - s_grid[k])
+                        if fast_int:
+                            # look-ups and sums after the block's geometry (below)
+                            QO[nq] = oi
+                            QJ[nq] = j
+                            QK[nq] = k
+                            QWX[nq] = wx
+                            QWS[nq] = ws
+                            nq += 1
+                            continue
                         # sheet values of the cell read first: their cache misses overlap
                         # with the Burgers look-ups below
                         a00 = lin[j, k, 0]
@@ -1286,9 +1304,16 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
                     eta = sg * dphi * ia
                     chi = 0.0
                     if tt > 0.0:
-                        ge = _node_of(prof, A * tt, en, et)
-                        if ge < 0:
-                            return 1
+                        tau_e = A * tt
+                        ge = NG[w, prof]
+                        # the node list of the previous exterior point of this walker
+                        # and side still brackets tau_e (the unique g with
+                        # en[g-1] <= tau_e < en[g] that _node_of bisects for)
+                        if not (fast_int and ge > et[prof] and en[ge - 1] <= tau_e < en[ge]):
+                            ge = _node_of(prof, tau_e, en, et)
+                            if ge < 0:
+                                return 1
+                            NG[w, prof] = ge
                         hint = -1
                         if prof == 0 and ge == HG[w, 0]:
                             hint = HP[w, 0]
@@ -1340,7 +1365,92 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
                     norm = math.sqrt(1.0 + mach * mach)
                     out_r[w, oi] = cpw * (xq * sg * mach / norm * sigma + res_w * rr)
                     out_p[w, oi] = cpw * (xq * sg / norm * sigma + res_w * rv)
+                if nq > 0:
+                    _interior_block(w, nq, QO, QJ, QK, QWX, QWS, QV, amp_cp, GC, TAU, DC, CLO,
+                                    CHI, CBG, col_xh, col_prof, col_g, col_wr, col_wp, col_first,
+                                    lin, s_grid, iy, ic, iu, idd, iss, inn, ih, iho, isup,
+                                    out_r, out_p)
     return 0
+
+
+@njit(cache=True, _nrt=False)
+def _interior_block(w, nq, QO, QJ, QK, QWX, QWS, QV, amp_cp, GC, TAU, DC, CLO, CHI, CBG, col_xh,
+                    col_prof, col_g, col_wr, col_wp, col_first, lin, s_grid, iy, ic, iu, idd,
+                    iss, inn, ih, iho, isup, out_r, out_p):  # pragma: no cover
+    """Interior points of one block for walker ``w``, gathered by the kernel.
+
+    First every Burgers look-up of the block in a loop that holds little else
+    (the column pair and its two ``s`` nodes per point), then the bilinear sums
+    with the sheet cells: the same operations in the same order as the
+    kernel's general interior path, so the values are identical.
+    """
+    ns = s_grid.shape[0]
+    for q in range(nq):
+        j = QJ[q]
+        k = QK[q]
+        wx = QWX[q]
+        for dj in range(2):
+            jj = j + dj
+            wj = wx if dj == 1 else 1.0 - wx
+            if wj == 0.0 or GC[w, jj] <= 0:
+                continue
+            pj = col_prof[jj]
+            tj = TAU[w, jj]
+            bs = iss[pj]
+            ls = iss[pj + 1] - 1
+            if col_xh[jj] > 0:
+                e0 = s_grid[k]
+                e1 = s_grid[k + 1]
+                st = col_first[jj] + k
+            else:
+                e0 = -s_grid[k + 1]
+                e1 = -s_grid[k]
+                st = col_first[jj] + ns - 2 - k
+            va, jb, ok = _local_fast(e0, tj, CBG[w, jj], CLO[w, jj], CHI[w, jj], st, bs, ls,
+                                     iy, ic, idd)
+            if not ok:
+                va, jb = _eval_local(pj, e0, tj, GC[w, jj], st, iy, ic, iu, idd, iss, inn, ih,
+                                     iho, isup)
+            vb, jb, ok = _local_fast(e1, tj, CBG[w, jj], CLO[w, jj], CHI[w, jj], jb + 1, bs,
+                                     ls, iy, ic, idd)
+            if not ok:
+                vb, jb = _eval_local(pj, e1, tj, GC[w, jj], jb + 1, iy, ic, iu, idd, iss, inn,
+                                     ih, iho, isup)
+            if col_xh[jj] > 0:
+                QV[q, 2 * dj] = va
+                QV[q, 2 * dj + 1] = vb
+            else:
+                QV[q, 2 * dj] = vb
+                QV[q, 2 * dj + 1] = va
+    for q in range(nq):
+        j = QJ[q]
+        k = QK[q]
+        wx = QWX[q]
+        ws = QWS[q]
+        ur = 0.0
+        up = 0.0
+        for dj in range(2):
+            jj = j + dj
+            wj = wx if dj == 1 else 1.0 - wx
+            if wj == 0.0:
+                continue
+            su0 = lin[jj, k, 0]
+            sv0 = lin[jj, k, 1]
+            sf0 = lin[jj, k, 2]
+            su1 = lin[jj, k + 1, 0]
+            sv1 = lin[jj, k + 1, 1]
+            sf1 = lin[jj, k + 1, 2]
+            ch0 = 0.0
+            ch1 = 0.0
+            if GC[w, jj] > 0:
+                ch0 = col_g[jj] * (QV[q, 2 * dj] - sf0)
+                ch1 = col_g[jj] * (QV[q, 2 * dj + 1] - sf1)
+            w0 = wj * (1.0 - ws) * DC[w, jj]
+            w1 = wj * ws * DC[w, jj]
+            ur += w0 * (su0 + col_wr[jj] * ch0) + w1 * (su1 + col_wr[jj] * ch1)
+            up += w0 * (sv0 + col_wp[jj] * ch0) + w1 * (sv1 + col_wp[jj] * ch1)
+        out_r[w, QO[q]] = amp_cp * ur
+        out_p[w, QO[q]] = amp_cp * up
 
 
 class EmulatorModel:
