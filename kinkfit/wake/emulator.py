@@ -552,7 +552,7 @@ def _eval_local(p, eta, tau, g, j0, y, c, u0, death, s_off, nodes, h_idx, h_off,
     return _stream(p, eta, tau, g, j - base, y, c, u0, death, s_off, h_idx, h_off), j
 
 
-@njit(cache=True, _nrt=False)
+@njit(cache=True, _nrt=False, inline="always")
 def _local_fast(eta, tau, big, lo_b, hi_b, j0, base, last, y, c, death):  # pragma: no cover
     """The common path of :func:`_eval_local`, with the per-(walker, column) scalars hoisted.
 
@@ -1236,37 +1236,7 @@ def _kernel(order, eperm, r, phi, inside, pw, r_lo, r_hi, amp, rp, phi_p, cp, be
                             if GC[w, jj] > 0:
                                 pj = col_prof[jj]
                                 # s node k is profile sample col_first + k (reversed for x < 0)
-                                if fast_int:
-                                    tj = TAU[w, jj]
-                                    bs = iss[pj]
-                                    ls = iss[pj + 1] - 1
-                                    if col_xh[jj] > 0:
-                                        e0 = s_grid[k]
-                                        e1 = s_grid[k + 1]
-                                        st = col_first[jj] + k
-                                    else:
-                                        e0 = -s_grid[k + 1]
-                                        e1 = -s_grid[k]
-                                        st = col_first[jj] + ns - 2 - k
-                                    va, jb, ok = _local_fast(e0, tj, CBG[w, jj], CLO[w, jj],
-                                                             CHI[w, jj], st, bs, ls, iy, ic, idd)
-                                    if not ok:
-                                        va, jb = _eval_local(pj, e0, tj, GC[w, jj], st, iy, ic,
-                                                             iu, idd, iss, inn, ih, iho, isup)
-                                    vb, jb, ok = _local_fast(e1, tj, CBG[w, jj], CLO[w, jj],
-                                                             CHI[w, jj], jb + 1, bs, ls, iy, ic,
-                                                             idd)
-                                    if not ok:
-                                        vb, jb = _eval_local(pj, e1, tj, GC[w, jj], jb + 1, iy,
-                                                             ic, iu, idd, iss, inn, ih, iho,
-                                                             isup)
-                                    if col_xh[jj] > 0:
-                                        v0 = va
-                                        v1 = vb
-                                    else:
-                                        v0 = vb
-                                        v1 = va
-                                elif col_xh[jj] > 0:
+                                if col_xh[jj] > 0:
                                     v0, jb = _eval_local(pj, s_grid[k], TAU[w, jj], GC[w, jj],
                                                          col_first[jj] + k, iy, ic, iu, idd, iss,
                                                          inn, ih, iho, isup)
