@@ -44,7 +44,12 @@ caller passes the same points, so the loop calls no transcendental function but
 ``sqrt`` (and ``exp`` for damped on-wake points); interior points in radius
 order with a local search of the column's own samples; exterior points in
 (radius bin, azimuth) order, galloping from the previous bracket; table
-look-ups compiled without NRT (no reference counting per call).  The
+look-ups compiled without NRT (no reference counting per call).  The interior
+points of a block are gathered first and their look-ups done in a loop of
+their own (:func:`_interior_block`) through :func:`_local_fast` (the common
+path of :func:`_eval_local` with the per-column scalars hoisted, inlined); the
+general path stays in the kernel as the reference (``EmulatorModel._fast_interior
+= False``; the tests compare the two).  The
 reference in tests is the direct
 model itself, evaluated exactly in time (``kinkfit.wake.model._N_TIME`` raised
 above the number of points, so that :func:`~kinkfit.wake.burgers.burgers_at_times`
