@@ -715,6 +715,7 @@ def fit_emission(cube, geom, start, *, oversample: int = 2, stride: int = 2,
     # the peak brightness, so for a few line widths around the start the
     # best peak is one projection; keep the best of them
     best = None
+    d = np.where(good, data, 0.0) / noise
     for factor in (0.3, 0.45, 0.65, 1.0, 1.5):
         xc = x0.copy()
         xc[4] = float(np.clip(x0[4] + 2.0 * math.log(factor), lo[4] + 1e-9,
@@ -722,7 +723,6 @@ def fit_emission(cube, geom, start, *, oversample: int = 2, stride: int = 2,
         m = model_cube(cube, geom, emission_of(xc),
                        oversample=oversample).data[:, ::stride, ::stride]
         m = np.where(good, m, 0.0) / noise
-        d = np.where(good, data, 0.0) / noise
         mm = float(np.sum(m * m))
         if not mm > 0:
             continue

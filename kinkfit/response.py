@@ -527,6 +527,7 @@ def build_ridge_response(cube, ridges, geom, emission, *, background=None,
     from .deviations import model_cube, signed_offsets
     from .geometry import (background_velocity, projection_coefficients,
                            sky_to_disk)
+    from .synth import channel_profile
     from .trace import _grid, _to_index
 
     n = len(ridges)
@@ -710,9 +711,8 @@ def build_ridge_response(cube, ridges, geom, emission, *, background=None,
                 -0.5 * ((a / smaj[i]) ** 2 + (b / smin[i]) ** 2))
         beam *= (node_stride * pix) ** 2 / (2.0 * math.pi * smaj[i] * smin[i])
         lo_k, hi_k = vel[k] - 0.5 * dv_ch, vel[k] + 0.5 * dv_ch
-        phib = np.where(has_back[pos], _channel_profile(
-            v_b[pos], _SQRT2 * sig_b[pos], lo_k, hi_k,
-            math.sqrt(math.pi) / 2.0 * _SQRT2 * sig_b[pos] / dv_ch), 0.0)
+        phib = np.where(has_back[pos], channel_profile(
+            v_b[pos], sig_b[pos], lo_k, hi_k), 0.0)
         s_eff = s_front[pos] - s_back[pos] * np.nan_to_num(phib)
         kb = kern @ beam
         weight[i, :nk, :q] = kb[:, :q] * s_eff[None, :]
@@ -723,9 +723,8 @@ def build_ridge_response(cube, ridges, geom, emission, *, background=None,
             # the back layer's change, seen through the unperturbed front
             # layer: S_back (1 - Phi_front) dPhi_back (the product of the
             # two layers' changes, second order, is dropped)
-            phif = np.where(keep_u[pb], _channel_profile(
-                v_f[pb], _SQRT2 * sig_f[pb], lo_k, hi_k,
-                math.sqrt(math.pi) / 2.0 * _SQRT2 * sig_f[pb] / dv_ch), 0.0)
+            phif = np.where(keep_u[pb], channel_profile(
+                v_f[pb], sig_f[pb], lo_k, hi_k), 0.0)
             weight[i, :nk, q:q + qb] = kb[:, q:] * (
                 s_back[pb] * (1.0 - np.nan_to_num(phif))
                 * float(back_stride) ** 2)[None, :]
