@@ -295,8 +295,8 @@ def forward_response(cube, ridges, geometry, deviations):
 
 
 def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
-            workers: int | None = None, progress: bool | None = None
-            ) -> FitRun:
+            workers: int | None = None, progress: bool | None = None,
+            traced=None, cube=None) -> FitRun:
     """Run the whole job for one config (see the module docstring).
 
     Parameters
@@ -310,6 +310,15 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
         Processes for the likelihood (overrides ``sampler.workers``).
     progress : bool, optional
         Progress bar (overrides ``sampler.progress``).
+    traced : tuple, optional
+        ``(ridges, background_fit, deviations)`` as returned by
+        :func:`kinkfit.trace.run_trace` for this cube, used instead of
+        tracing again (an interactive session that has already traced the
+        cube; written to ``trace.h5`` like a fresh trace).  The caller
+        vouches that it was traced with this config's ``[data]``, ``[disk]``
+        and ``[trace]`` settings.
+    cube : kinkfit.cube.Cube, optional
+        The already-read cube of ``data.cube`` (default: read it).
 
     Returns
     -------
@@ -326,21 +335,26 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
     centre = None
     if cfg.data.centre_ra_deg is not None:
         centre = (cfg.data.centre_ra_deg, cfg.data.centre_dec_deg)
-    cube = read_cube(cfg.data.cube, centre=centre,
-                     line_free=cfg.data.line_free_channels)
+    if cube is None:
+        cube = read_cube(cfg.data.cube, centre=centre,
+                         line_free=cfg.data.line_free_channels)
     cube_sha = cube.provenance.get("sha256") or file_sha256(cfg.data.cube)
     truths = truths_from_header(cube)
 
     trace_file = folder / "trace.h5"
-    traced = None if force else _reuse_trace(trace_file, cfg, cube_sha)
+    given = traced is not None
+    if not given and not force:
+        traced = _reuse_trace(trace_file, cfg, cube_sha)
+        if traced is not None:
+            log.info("%s: traced data of this config and cube reused",
+                     trace_file.name)
+    reused = traced is not None and not given
     if traced is None:
-        ridges, fit, deviations = run_trace(cfg, cube=cube)
+        traced = run_trace(cfg, cube=cube)
+    ridges, fit, deviations = traced
+    if not reused:
         write_trace_file(trace_file, ridges, fit, deviations, cfg=cfg,
                          overwrite=True)
-    else:
-        ridges, fit, deviations = traced
-        log.info("%s: traced data of this config and cube reused",
-                 trace_file.name)
     geometry = fit.geometry if fit is not None else cfg.geometry()
     response = None
     if cfg.likelihood.kink_model == "forward":
