@@ -24,7 +24,7 @@ from kinkfit.sampling import read_checkpoint
 from kinkfit.scenario import synth_from_config
 from kinkfit.trace import read_trace_file
 
-N_TRIALS = 20
+N_TRIALS = 8   # kill moments uniform in 0.5-6 s: start search, sampling, writes
 
 
 def _products_valid(folder: Path):
@@ -38,23 +38,33 @@ def _products_valid(folder: Path):
         read_trace_file(folder / "trace.h5")
 
 
-def _reference_and_twin(tmp_path, twin, steps):
-    """An uninterrupted fit's result, and the config of an identical fit in
-    the folder ``twin`` (its cube synthesised, nothing run yet)."""
-    ref_dir = tmp_path / "ref"
-    ref_dir.mkdir()
-    cfg_ref = _config(ref_dir, steps=steps)
+STEPS = 150
+
+
+@pytest.fixture(scope="module")
+def reference(tmp_path_factory):
+    """An uninterrupted fit of ``STEPS`` steps: its result and config (the
+    oracle of both tests; computed once)."""
+    ref_dir = tmp_path_factory.mktemp("ref")
+    cfg_ref = _config(ref_dir, steps=STEPS)
     synth_from_config(cfg_ref)
-    reference = read_result(run_fit(cfg_ref, progress=False).results["none"])
+    result = read_result(run_fit(cfg_ref, progress=False).results["none"])
+    return result, cfg_ref
+
+
+def _twin(reference, tmp_path, twin):
+    """The config of a fit identical to the reference in the folder ``twin``
+    (the same cube copied there, nothing run yet)."""
+    _, cfg_ref = reference
     work = tmp_path / twin
     work.mkdir()
-    cfg = _config(work, steps=steps)
+    cfg = _config(work, steps=STEPS)
     shutil.copyfile(cfg_ref.data.cube, cfg.data.cube)   # the same cube
-    return reference, cfg
+    return cfg
 
 
-def test_sigkill_at_random_points_then_resume(tmp_path):
-    reference, cfg = _reference_and_twin(tmp_path, "killed", 150)
+def test_sigkill_at_random_points_then_resume(tmp_path, reference):
+    cfg = _twin(reference, tmp_path, "killed")
     work = tmp_path / "killed"
     env = dict(os.environ, OMP_NUM_THREADS="1")
     rng = np.random.default_rng(4)
@@ -79,11 +89,12 @@ def test_sigkill_at_random_points_then_resume(tmp_path):
     assert any(s in text for s in ("resumed from checkpoint at step",
                                    "finished result kept", "new fit")), text
     result = read_result(cfg.output.folder / "fit_none.h5")
-    np.testing.assert_array_equal(result.chain, reference.chain)
-    np.testing.assert_array_equal(result.log_prob, reference.log_prob)
+    np.testing.assert_array_equal(result.chain, reference[0].chain)
+    np.testing.assert_array_equal(result.log_prob, reference[0].log_prob)
 
 
-def test_checkpoint_killed_before_first_block_restarts_like_a_new_fit(tmp_path):
+def test_checkpoint_killed_before_first_block_restarts_like_a_new_fit(
+        tmp_path, reference):
     """A SIGKILL after the checkpoint file is created but before its first
     block of steps is flushed leaves a valid checkpoint at iteration 0; the
     next run must then start exactly as an uninterrupted run (same start
@@ -93,7 +104,7 @@ def test_checkpoint_killed_before_first_block_restarts_like_a_new_fit(tmp_path):
     """
     from kinkfit.sampling import _open_backend
 
-    reference, cfg = _reference_and_twin(tmp_path, "empty", 40)
+    cfg = _twin(reference, tmp_path, "empty")
     folder = cfg.output.folder
     folder.mkdir(parents=True, exist_ok=True)
     pset = cfg.parameter_set("none", with_planet=True)
@@ -103,4 +114,4 @@ def test_checkpoint_killed_before_first_block_restarts_like_a_new_fit(tmp_path):
     run = run_fit(cfg, progress=False)
     assert run.status["none"] == "new fit"
     result = read_result(run.results["none"])
-    np.testing.assert_array_equal(result.chain, reference.chain)
+    np.testing.assert_array_equal(result.chain, reference[0].chain)
