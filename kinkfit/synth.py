@@ -42,6 +42,7 @@ from __future__ import annotations
 
 import logging
 import math
+from collections import OrderedDict
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
@@ -363,14 +364,45 @@ def channel_profile(v0_kms, sigma_kms, v_lo_kms, v_hi_kms):
 
 
 # ------------------------------------------------------------------ model ---
+# The deprojection of a sub-pixel grid depends on the geometry alone; a fit of
+# the emission profile (kinkfit.deviations.fit_emission) makes ~100 model
+# cubes at one geometry, and the iterative height solve was half of each.
+_LAYER_MEMO: "OrderedDict[tuple, tuple]" = OrderedDict()
+_LAYER_MEMO_SIZE = 4
+
+
+def _layer_positions(geom, xs, ys, surface):
+    """Disk coordinates and Keplerian speed of the grid's points on one layer.
+
+    Returns ``(idx, r_au, phi_rad, z_au, v_phi_kms)`` for the points with a
+    finite deprojection (flat indices into the grid), memoised on the
+    geometry, the layer and the grid (its shape and corner values: the grids
+    of :func:`sky_grid` are regular).  The arrays are read-only.
+    """
+    key = (geom, surface, xs.shape, float(xs.flat[0]), float(xs.flat[-1]),
+           float(ys.flat[0]), float(ys.flat[-1]))
+    hit = _LAYER_MEMO.get(key)
+    if hit is not None:
+        _LAYER_MEMO.move_to_end(key)
+        return hit
+    r, phi, z = sky_to_disk(geom, xs, ys, surface)
+    idx = np.flatnonzero(np.isfinite(r).ravel())
+    rr, pp, zz = r.ravel()[idx], phi.ravel()[idx], z.ravel()[idx]
+    out = (idx, rr, pp, zz, rotation_speed_kms(geom, rr, zz))
+    for a in out:
+        a.setflags(write=False)
+    _LAYER_MEMO[key] = out
+    while len(_LAYER_MEMO) > _LAYER_MEMO_SIZE:
+        _LAYER_MEMO.popitem(last=False)
+    return out
+
+
 def _layer(geom, emission, xs, ys, surface, perturbation):
     """Velocity, brightness and width of one layer on the sub-pixel grid."""
-    r, phi, z = sky_to_disk(geom, xs, ys, surface)
-    ok = np.isfinite(r)
-    ok &= r <= emission.r_out_au
-    idx = np.flatnonzero(ok.ravel())
-    rr, pp, zz = r.ravel()[idx], phi.ravel()[idx], z.ravel()[idx]
-    v_phi = rotation_speed_kms(geom, rr, zz)
+    idx, rr, pp, zz, v_phi = _layer_positions(geom, xs, ys, surface)
+    keep = rr <= emission.r_out_au
+    if not np.all(keep):
+        idx, rr, pp, zz, v_phi = idx[keep], rr[keep], pp[keep], zz[keep], v_phi[keep]
     dv = (0.0, 0.0, 0.0)
     if perturbation is not None and idx.size:
         out = perturbation(rr, pp, zz)
@@ -388,6 +420,35 @@ def _layer(geom, emission, xs, ys, surface, perturbation):
     vlos = los_velocity(geom, rr, pp, zz, v_r=dv[0], v_phi=v_phi + dv[1], v_z=dv[2])
     return (idx, vlos, emission.brightness_jy_beam(rr, surface),
             emission.line_sigma_kms(rr))
+
+
+# erf(x) rounds to exactly +-1 in float64 for |x| >= 5.95; beyond this many
+# sqrt(2) sigma from a channel's edges a point's channel_profile is exactly 0
+_ERF_SATURATED = 6.5
+
+
+def _velocity_windows(layer, velocity_kms, width_kms):
+    """Points of a layer whose line reaches each channel.
+
+    A point with ``|v - v_k| > width/2 + 6.5 sqrt(2) sigma_max`` has both
+    erf arguments of :func:`channel_profile` beyond 6.5 with the same sign,
+    so its profile is exactly zero in float64 and can be skipped without
+    changing a bit of the cube.
+
+    Returns
+    -------
+    list of ndarray
+        Per channel, indices into the layer's point arrays.
+    """
+    _, v, _, sigma = layer
+    sigma = np.broadcast_to(np.asarray(sigma, float), np.shape(v))
+    order = np.argsort(v, kind="stable")
+    v_sorted = v[order]
+    reach = width_kms / 2.0 + _ERF_SATURATED * math.sqrt(2.0) * (
+        float(np.max(sigma)) if sigma.size else 0.0)
+    lo = np.searchsorted(v_sorted, np.asarray(velocity_kms) - reach, side="left")
+    hi = np.searchsorted(v_sorted, np.asarray(velocity_kms) + reach, side="right")
+    return [order[a:b] for a, b in zip(lo, hi)]
 
 
 def make_cube(geom: DiskGeometry, setup: ObservingSetup, emission: LineEmission, *,
@@ -428,17 +489,21 @@ def make_cube(geom: DiskGeometry, setup: ObservingSetup, emission: LineEmission,
             if emission.back_ratio > 0 else None)
     nsub = xs.size
     cube = np.zeros((setup.nchan, n, n))
+    front_w = _velocity_windows(front, velocity, dv)
+    back_w = _velocity_windows(back, velocity, dv) if back is not None else None
     for k, vk in enumerate(velocity):
         lo, hi = vk - dv / 2.0, vk + dv / 2.0
         img = np.zeros(nsub)
         idx_f, v_f, i_f, s_f = front
+        sel = front_w[k]
         phi_f = np.zeros(nsub)
-        phi_f[idx_f] = channel_profile(v_f, s_f, lo, hi)
-        img[idx_f] = i_f * phi_f[idx_f]
+        phi_f[idx_f[sel]] = channel_profile(v_f[sel], s_f[sel], lo, hi)
+        img[idx_f[sel]] = i_f[sel] * phi_f[idx_f[sel]]
         if back is not None:
             idx_b, v_b, i_b, s_b = back
-            phi_b = channel_profile(v_b, s_b, lo, hi)
-            img[idx_b] += i_b * phi_b * (1.0 - phi_f[idx_b])
+            sel = back_w[k]
+            phi_b = channel_profile(v_b[sel], s_b[sel], lo, hi)
+            img[idx_b[sel]] += i_b[sel] * phi_b * (1.0 - phi_f[idx_b[sel]])
         cube[k] = img.reshape(n, os_, n, os_).mean(axis=(1, 3))
     if not convolve:
         return cube, velocity
