@@ -331,7 +331,10 @@ def test_find_start_without_finite_point_raises():
 
 def test_find_modes_returns_both_modes_of_a_bimodal_posterior():
     """Two equal, well separated Gaussian modes at analytically known
-    positions: both are returned, best first, each to 1e-3 of its width."""
+    positions: both are returned, best first, each to 2% of its width (the
+    polish stops at 1e-4 of the prior width and 1e-3 in log-probability,
+    i.e. within ~0.05 sigma of a Gaussian peak: a start point, refined by
+    the sampler)."""
     from kinkfit.params import ParameterSet
     from kinkfit.priors import Uniform
     from kinkfit.sampling import find_modes
@@ -347,5 +350,5 @@ def test_find_modes_returns_both_modes_of_a_bimodal_posterior():
     modes = find_modes(log_prob, pset, np.random.default_rng(2), n_tries=400,
                        n_polish=12)
     assert len(modes) == 2
-    np.testing.assert_allclose(modes[0], centres[1], atol=5e-4)
-    np.testing.assert_allclose(modes[1], centres[0], atol=5e-4)
+    np.testing.assert_allclose(modes[0], centres[1], atol=0.02 * 0.5)
+    np.testing.assert_allclose(modes[1], centres[0], atol=0.02 * 0.5)
