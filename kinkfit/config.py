@@ -147,6 +147,13 @@ _SCHEMA: dict[str, tuple[_Field, ...]] = {
         _f("background_prior", _Q, 3.0, unit="", low=0.0,
            doc="marginalise the planet fit over the background disk, with "
                "a Gaussian prior this many fitted sigmas wide (0: fixed)"),
+        _f("node_subpixels", "int", 1, low=1, high=4,
+           doc="forward kink model: wake sampled at n x n points per pixel "
+               "(2 for massive planets on pixels coarser than ~h_p r_p / 3; "
+               "~4x the cost; docs/physics/response.md)"),
+        _f("back_node_stride", "int", 2, low=1, high=4,
+           doc="forward kink model: back-layer nodes on every n-th pixel "
+               "(1 with node_subpixels >= 2)"),
     ),
     "sampler": (
         _f("walkers", "int", 32, low=4, doc="emcee walkers"),
@@ -293,6 +300,8 @@ class LikelihoodSettings:
     dof: float
     kink_model: str = "forward"
     background_prior: float = 3.0
+    node_subpixels: int = 1
+    back_node_stride: int = 2
 
 
 @dataclass(frozen=True)
@@ -431,6 +440,9 @@ def _convert(fld: _Field, value, key: str, file):
                               file=file, key=key, value=value)
         if fld.low is not None and value < fld.low:
             raise ConfigError(f"{key} = {value} must be >= {fld.low:g}",
+                              file=file, key=key, value=value)
+        if fld.high is not None and value > fld.high:
+            raise ConfigError(f"{key} = {value} must be <= {fld.high:g}",
                               file=file, key=key, value=value)
         return int(value)
     if fld.kind == "bool":
@@ -601,7 +613,8 @@ def parse_config(text: str, path: str | Path | None = None) -> KinkfitConfig:
                           t["max_sigma_beams"])
     lk = _section(raw.get("likelihood", {}), "likelihood", file)
     likelihood = LikelihoodSettings(lk["kind"], lk["dof"], lk["kink_model"],
-                                    lk["background_prior"])
+                                    lk["background_prior"],
+                                    lk["node_subpixels"], lk["back_node_stride"])
     s = _section(raw.get("sampler", {}), "sampler", file)
     sampler = SamplerSettings(**s)
     o = _section(raw.get("output", {}), "output", file)

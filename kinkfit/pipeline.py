@@ -364,8 +364,10 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
     geometry = fit.geometry if fit is not None else cfg.geometry()
     response = None
     if cfg.likelihood.kink_model == "forward":
-        response, deviations = forward_response(cube, ridges, geometry,
-                                                deviations)
+        response, deviations = forward_response(
+            cube, ridges, geometry, deviations,
+            node_oversample=cfg.likelihood.node_subpixels,
+            back_stride=cfg.likelihood.back_node_stride)
 
     run = FitRun(output_folder=folder, trace_file=trace_file)
     names = list(cfg.wake.damping) + ([BASELINE] if cfg.wake.baseline else [])

@@ -90,6 +90,8 @@ radius = { prior = "uniform", low = "7.48e12 m", high = 150 }
     (lambda t: t + "\n[sampler]\nwalkers = 'many'\n", "sampler.walkers"),
     (lambda t: t + "\n[sampler]\nwalkers = 4\n", "sampler.walkers"),
     (lambda t: t + "\nbogus = 1\n", "bogus"),
+    (lambda t: t + "\n[likelihood]\nnode_subpixels = 0\n", "likelihood.node_subpixels"),
+    (lambda t: t + "\n[likelihood]\nback_node_stride = 9\n", "likelihood.back_node_stride"),
     (lambda t: t.replace("[data]", "[data\n"), "TOML"),
 ])
 def test_bad_configs_name_the_key(edit, needle):
