@@ -120,8 +120,6 @@ _SCHEMA: dict[str, tuple[_Field, ...]] = {
                "give one fit each for comparison"),
         _f("baseline", "bool", True,
            doc="also fit the planet-free baseline"),
-        _f("matching_distance", _Q, 3.0, unit="", low=1.0, high=8.0,
-           doc="linear -> nonlinear matching distance, in h_p"),
     ),
     "trace": (
         _f("surfaces", "list", ["front"], doc="surfaces to trace"),
@@ -281,7 +279,6 @@ class WakeSettings:
     adiabatic_index: float
     damping: tuple[str, ...]
     baseline: bool
-    matching_distance_h: float
 
 
 @dataclass(frozen=True)
@@ -598,7 +595,7 @@ def parse_config(text: str, path: str | Path | None = None) -> KinkfitConfig:
         aspect_ratio=w["aspect_ratio"], sound_speed_index=w["sound_speed_index"],
         surface_density_index=w["surface_density_index"],
         adiabatic_index=w["adiabatic_index"], damping=damping,
-        baseline=w["baseline"], matching_distance_h=w["matching_distance"])
+        baseline=w["baseline"])
 
     priors = _planet_priors(raw.get("planet", {}), file)
 
