@@ -451,6 +451,69 @@ def _velocity_windows(layer, velocity_kms, width_kms):
     return [order[a:b] for a, b in zip(lo, hi)]
 
 
+# The channel profiles of a grid depend on the geometry, the channels and
+# the line width alone, not on the brightness: a fit of the emission profile
+# (kinkfit.deviations.fit_emission) changes one parameter per finite-
+# difference column, four of its six columns only the brightness.
+_PROFILE_MEMO: "OrderedDict[tuple, list]" = OrderedDict()
+_PROFILE_MEMO_SIZE = 2
+
+
+def _channel_profiles(geom, emission, xs, ys, front, back, velocity, dv,
+                      memo):
+    """Per channel, the points each layer's line reaches and their profiles.
+
+    Returns a list over channels of ``(sel_f, phi_f, sel_b, phi_b,
+    phi_f_at_b)``: indices into the front layer's point arrays and the
+    front profile there (:func:`channel_profile`), the same for the back
+    layer (None without one) and the front profile at the back layer's
+    points (0 where the front layer has none).  ``memo``: keep the result
+    for a later call with the same geometry, grid, channels and line-width
+    parameters (unperturbed layers only); the cube is then the same to the
+    last bit.
+    """
+    key = None
+    if memo:
+        key = (geom, xs.shape, float(xs.flat[0]), float(xs.flat[-1]),
+               float(ys.flat[0]), float(ys.flat[-1]), float(dv),
+               np.asarray(velocity, float).tobytes(), back is not None,
+               emission.r_out_au, emission.r_core_au, emission.t_ref_k,
+               emission.r_t_ref_au, emission.temperature_index,
+               emission.molecule_amu, emission.v_turb_kms)
+        hit = _PROFILE_MEMO.get(key)
+        if hit is not None:
+            _PROFILE_MEMO.move_to_end(key)
+            return hit
+    nsub = xs.size
+    front_w = _velocity_windows(front, velocity, dv)
+    back_w = _velocity_windows(back, velocity, dv) if back is not None else None
+    idx_f, v_f, _, s_f = front
+    phi_f = np.zeros(nsub)
+    out = []
+    for k, vk in enumerate(velocity):
+        lo, hi = vk - dv / 2.0, vk + dv / 2.0
+        sel = front_w[k]
+        pf = channel_profile(v_f[sel], s_f[sel], lo, hi)
+        entry = [sel, pf, None, None, None]
+        if back is not None:
+            idx_b, v_b, _, s_b = back
+            sel_b = back_w[k]
+            phi_f[idx_f[sel]] = pf
+            entry[2] = sel_b
+            entry[3] = channel_profile(v_b[sel_b], s_b[sel_b], lo, hi)
+            entry[4] = phi_f[idx_b[sel_b]]
+            phi_f[idx_f[sel]] = 0.0
+        for a in entry:
+            if a is not None:
+                a.setflags(write=False)
+        out.append(tuple(entry))
+    if key is not None:
+        _PROFILE_MEMO[key] = out
+        while len(_PROFILE_MEMO) > _PROFILE_MEMO_SIZE:
+            _PROFILE_MEMO.popitem(last=False)
+    return out
+
+
 def make_cube(geom: DiskGeometry, setup: ObservingSetup, emission: LineEmission, *,
               perturbation=None, rng=None, noise: bool = True,
               convolve: bool = True):
@@ -489,21 +552,15 @@ def make_cube(geom: DiskGeometry, setup: ObservingSetup, emission: LineEmission,
             if emission.back_ratio > 0 else None)
     nsub = xs.size
     cube = np.zeros((setup.nchan, n, n))
-    front_w = _velocity_windows(front, velocity, dv)
-    back_w = _velocity_windows(back, velocity, dv) if back is not None else None
-    for k, vk in enumerate(velocity):
-        lo, hi = vk - dv / 2.0, vk + dv / 2.0
-        img = np.zeros(nsub)
-        idx_f, v_f, i_f, s_f = front
-        sel = front_w[k]
-        phi_f = np.zeros(nsub)
-        phi_f[idx_f[sel]] = channel_profile(v_f[sel], s_f[sel], lo, hi)
-        img[idx_f[sel]] = i_f[sel] * phi_f[idx_f[sel]]
+    profiles = _channel_profiles(geom, emission, xs, ys, front, back,
+                                 velocity, dv, perturbation is None)
+    img = np.zeros(nsub)
+    for k in range(len(velocity)):
+        sel_f, pf, sel_b, pb, pf_at_b = profiles[k]
+        img[:] = 0.0
+        img[front[0][sel_f]] = front[2][sel_f] * pf
         if back is not None:
-            idx_b, v_b, i_b, s_b = back
-            sel = back_w[k]
-            phi_b = channel_profile(v_b[sel], s_b[sel], lo, hi)
-            img[idx_b[sel]] += i_b[sel] * phi_b * (1.0 - phi_f[idx_b[sel]])
+            img[back[0][sel_b]] += back[2][sel_b] * pb * (1.0 - pf_at_b)
         cube[k] = img.reshape(n, os_, n, os_).mean(axis=(1, 3))
     if not convolve:
         return cube, velocity
