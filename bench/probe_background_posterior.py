@@ -13,6 +13,8 @@ variants
              ``likelihood.background_prior`` = 3 fitted sigmas;
 ``prior0``   background fitted, no marginalisation (prior width 0);
 ``priorN``   background fitted, prior width N fitted sigmas (N a number);
+``refitN``   background fitted, then refitted N times with the best
+             planet's kinks taken out (``disk.refit_with_planet = N``);
 ``known``    ``disk.fit_background = false``: the true geometry (the
              emission profile is still fitted to the cube, at that geometry).
 
@@ -51,6 +53,11 @@ def variant_config(folder, values, variant, steps):
         key = "surface_flaring = 1.2\n"
         assert key in text
         text = text.replace(key, key + "fit_background = false\n", 1)
+    elif variant.startswith("refit"):
+        rounds = int(variant[len("refit"):] or 1)
+        key = "surface_flaring = 1.2\n"
+        assert key in text
+        text = text.replace(key, key + f"refit_with_planet = {rounds}\n", 1)
     elif variant.startswith("prior"):
         width = float(variant[len("prior"):])
         text += f"\n[likelihood]\nbackground_prior = {width}\n"

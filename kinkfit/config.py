@@ -105,6 +105,10 @@ _SCHEMA: dict[str, tuple[_Field, ...]] = {
            doc="Gaussian taper radius of z(r) (default: none)"),
         _f("fit_background", "bool", True,
            doc="fit the background disk to the traced ridges"),
+        _f("refit_with_planet", "int", 1, low=0, high=3,
+           doc="rounds of refitting the background disk with the best "
+               "planet's kinks taken out, before sampling (forward kink "
+               "model; 0: off)"),
     ),
     "wake": (
         _f("aspect_ratio", _Q, 0.08, unit="", low=0, high=0.5,
@@ -252,6 +256,7 @@ class DiskSettings:
     surface_reference_radius_au: float
     surface_taper_au: float | None
     fit_background: bool
+    refit_with_planet: int = 1
 
     def geometry(self, distance_pc: float):
         """The :class:`kinkfit.geometry.DiskGeometry` these settings describe."""
@@ -578,7 +583,8 @@ def parse_config(text: str, path: str | Path | None = None) -> KinkfitConfig:
         surface_flaring=k["surface_flaring"],
         surface_reference_radius_au=k["surface_reference_radius"],
         surface_taper_au=k["surface_taper"],
-        fit_background=k["fit_background"])
+        fit_background=k["fit_background"],
+        refit_with_planet=k["refit_with_planet"])
 
     w = _section(raw.get("wake", {}), "wake", file)
     damping = tuple(str(x) for x in w["damping"])

@@ -245,6 +245,110 @@ def background_nuisance(cfg, background, deviations):
     return J, np.diag(1.0 / (width * errors) ** 2)
 
 
+def refit_background_with_planet(cfg: KinkfitConfig, cube, ridges, background,
+                                 traced_deviations, *, rounds: int = 1,
+                                 response=None, deviations=None):
+    """Refit the background disk with the planet's kinks taken out.
+
+    The background fit of the trace stage sees the planet's kinks as
+    residuals.  An inviscid or weakly damped wake kinks ridges across the
+    whole disk, and those moderate residuals, spread over many points, pull
+    the fit (on the CI-sized near-side case: stellar mass -4%, layer height
+    -15 to -30%, the planet mass -14%; docs/physics/response.md).  Each round
+    here fits the planet to the current background (the forward model's
+    best optimum from :func:`kinkfit.sampling.find_modes`, first damping
+    assumption, background marginalised as in the fit), predicts its kinks
+    at the traced points, refits the background to the ridges with those
+    kinks removed (added to the beam-smearing bias the fit subtracts), and
+    rebuilds the deviations and the forward model on the new background.
+    It is an alternating (block coordinate) optimisation of the joint
+    background + planet model; the posterior that follows is conditional on
+    its result, with the background marginalised linearly around it.
+
+    Parameters
+    ----------
+    cfg : KinkfitConfig
+    cube : kinkfit.cube.Cube
+    ridges : kinkfit.trace.Ridges
+    background : kinkfit.diskfit.BackgroundFit
+        The trace stage's fit.
+    traced_deviations : kinkfit.deviations.Deviations
+        The trace stage's deviations (first-order offsets, beam-smearing
+        bias in ``bias_arcsec``, emission profile in ``meta['bias']``).
+    rounds : int
+        Planet fit + background refit rounds (>= 1).
+    response, deviations : optional
+        The forward model and its deviations at ``background`` (built here
+        when missing).
+
+    Returns
+    -------
+    background : BackgroundFit
+        The refitted background.
+    response : kinkfit.response.RidgeResponse
+    deviations : kinkfit.deviations.Deviations
+        Forward-model deviations on the refitted background; ``meta
+        ['planet_refit']`` records each round's planet optimum and the
+        background before and after.
+    """
+    from dataclasses import replace
+
+    from .deviations import measure_deviations
+    from .diskfit import fit_background
+    from .likelihood import KinkLikelihood
+    from .sampling import find_modes
+    from .scenario import wake_disk
+    from .trace import _geom_dict
+    from .wake.emulator import make_fit_model
+
+    smear = np.nan_to_num(np.asarray(traced_deviations.bias_arcsec, float))
+    if response is None or deviations is None:
+        response, deviations = forward_response(
+            cube, ridges, background.geometry, traced_deviations,
+            node_oversample=cfg.likelihood.node_subpixels,
+            back_stride=cfg.likelihood.back_node_stride)
+    damping = cfg.wake.damping[0]
+    pset = cfg.parameter_set(damping, with_planet=True)
+    history = []
+    for k in range(max(1, int(rounds))):
+        geometry = background.geometry
+        model = make_fit_model(wake_disk(cfg, mstar_msun=geometry.mstar_msun),
+                               damping)
+        like = KinkLikelihood.from_deviations(
+            deviations, model, pset, kind=cfg.likelihood.kind,
+            dof=cfg.likelihood.dof, response=response,
+            nuisance=background_nuisance(cfg, background, deviations))
+        rng = np.random.default_rng([cfg.sampler.seed, 7919, k])
+        modes = find_modes(like.log_prob, pset, rng, n_tries=4096, n_polish=6)
+        lp = like.log_prob(modes)
+        best = modes[int(np.nanargmax(lp))]
+        kinks = np.nan_to_num(like.predict_offset(best)[0])
+        new = fit_background(ridges, geometry, background.names,
+                             bias=smear + kinks)
+        new = replace(new, rounds=background.rounds)
+        history.append({
+            "planet": {n: float(v) for n, v in zip(pset.free, best)},
+            "log_prob": float(np.nanmax(lp)),
+            "before": {n: float(v) for n, v in zip(background.names,
+                                                   background.values)},
+            "after": {n: float(v) for n, v in zip(new.names, new.values)}})
+        log.info("background refit with the planet (round %d): planet %s; "
+                 "%s", k + 1, ", ".join(f"{n} {v:.4g}" for n, v in
+                                         history[-1]["planet"].items()),
+                 new.summary().replace("\n", "; "))
+        background = new
+        redo = measure_deviations(ridges, background, bias=smear)
+        redo.meta.update({k2: v for k2, v in traced_deviations.meta.items()
+                          if k2 not in redo.meta})
+        redo.meta["geometry"] = _geom_dict(background.geometry)
+        response, deviations = forward_response(
+            cube, ridges, background.geometry, redo,
+            node_oversample=cfg.likelihood.node_subpixels,
+            back_stride=cfg.likelihood.back_node_stride)
+    deviations.meta["planet_refit"] = history
+    return background, response, deviations
+
+
 def forward_response(cube, ridges, geometry, deviations, *,
                      node_oversample: int = 1, back_stride: int = 2):
     """Tracer response of the traced points, and the deviations it implies.
@@ -368,6 +472,12 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
             cube, ridges, geometry, deviations,
             node_oversample=cfg.likelihood.node_subpixels,
             back_stride=cfg.likelihood.back_node_stride)
+        rounds = int(getattr(cfg.disk, "refit_with_planet", 0))
+        if rounds > 0 and fit is not None and cfg.wake.damping:
+            fit, response, deviations = refit_background_with_planet(
+                cfg, cube, ridges, fit, traced[2], rounds=rounds,
+                response=response, deviations=deviations)
+            geometry = fit.geometry
 
     run = FitRun(output_folder=folder, trace_file=trace_file)
     names = list(cfg.wake.damping) + ([BASELINE] if cfg.wake.baseline else [])
