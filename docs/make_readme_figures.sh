@@ -4,16 +4,20 @@
 #
 #   bash docs/make_readme_figures.sh              # montage and wake maps (~1 min)
 #   bash docs/make_readme_figures.sh --with-fit   # also run 'kinkfit fit
-#                                                 # configs/demo.toml' first
+#                                                 # configs/demo.toml' and
+#                                                 # configs/demo_damping.toml
 #
-# Without --with-fit the fit figures (gallery, corner plot, comparison) are
-# copied from an earlier 'kinkfit fit configs/demo.toml' when its outputs are
-# there (kinkfit_out/mirrowen/, the demo config's output.folder).
+# Without --with-fit the fit figures are copied from earlier fits when their
+# outputs are there: gallery and corner plot from 'kinkfit fit
+# configs/demo.toml' (kinkfit_out/mirrowen/), the comparison across damping
+# assumptions from 'kinkfit fit configs/demo_damping.toml'
+# (kinkfit_out/mirrowen_damping/).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
 images=docs/images
 out=kinkfit_out/mirrowen
+out_damping=kinkfit_out/mirrowen_damping
 mkdir -p "$images"
 
 kinkfit montage demo_cubes/mirrowen_12co21.fits --channels 18 -o "$images/demo_channels.png"
@@ -22,6 +26,7 @@ kinkfit wake configs/demo.toml -o "$images/demo_wake.png"
 if [ "${1:-}" = "--with-fit" ]; then
     # exits non-zero (and stops this script) if the chains did not converge
     kinkfit fit configs/demo.toml --no-progress
+    kinkfit fit configs/demo_damping.toml --no-progress
 fi
 
 copy_if_there() {  # source, destination
@@ -34,4 +39,4 @@ copy_if_there() {  # source, destination
 }
 copy_if_there "$out/gallery.png" "$images/demo_gallery.png"
 copy_if_there "$out/viscous/corner.png" "$images/demo_corner.png"
-copy_if_there "$out/comparison/comparison_corner.png" "$images/demo_comparison.png"
+copy_if_there "$out_damping/comparison/comparison_corner.png" "$images/demo_comparison.png"
