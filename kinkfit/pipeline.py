@@ -325,7 +325,9 @@ def refit_background_with_planet(cfg: KinkfitConfig, cube, ridges, background,
         kinks = np.nan_to_num(like.predict_offset(best)[0])
         new = fit_background(ridges, geometry, background.names,
                              bias=smear + kinks)
-        new = replace(new, rounds=background.rounds)
+        # the trace stage's round count (a fit read back from a trace file
+        # is a namespace without one: keep the refit's own)
+        new = replace(new, rounds=getattr(background, "rounds", new.rounds))
         history.append({
             "planet": {n: float(v) for n, v in zip(pset.free, best)},
             "log_prob": float(np.nanmax(lp)),
