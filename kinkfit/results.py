@@ -53,6 +53,9 @@ path                               content
 ``/model/median_offset_arcsec``    (npts,) pointwise posterior median of the
                                    model displacement (over the subset)
 ``/disk/values`` attrs             background-disk parameters -> float
+                                   (after the refit with the planet when
+                                   ``disk.refit_with_planet`` > 0; the trace
+                                   stage's fit is in ``trace.h5``)
 ``/disk/sigma`` attrs              their 1-sigma uncertainties
 ``/diagnostics/convergence`` attrs sampler settings (walkers, max_steps,
                                    check_every, autocorr_multiple,
