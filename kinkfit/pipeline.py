@@ -246,8 +246,8 @@ def background_nuisance(cfg, background, deviations):
 
 
 def refit_background_with_planet(cfg: KinkfitConfig, cube, ridges, background,
-                                 traced_deviations, *, rounds: int = 1,
-                                 response=None, deviations=None):
+                                 traced_deviations, response, deviations, *,
+                                 rounds: int = 1):
     """Refit the background disk with the planet's kinks taken out.
 
     The background fit of the trace stage sees the planet's kinks as
@@ -275,11 +275,12 @@ def refit_background_with_planet(cfg: KinkfitConfig, cube, ridges, background,
     traced_deviations : kinkfit.deviations.Deviations
         The trace stage's deviations (first-order offsets, beam-smearing
         bias in ``bias_arcsec``, emission profile in ``meta['bias']``).
+    response : kinkfit.response.RidgeResponse
+    deviations : kinkfit.deviations.Deviations
+        The forward model and its deviations at ``background``
+        (:func:`config_forward_response`).
     rounds : int
         Planet fit + background refit rounds (>= 1).
-    response, deviations : optional
-        The forward model and its deviations at ``background`` (built here
-        when missing).
 
     Returns
     -------
@@ -291,8 +292,6 @@ def refit_background_with_planet(cfg: KinkfitConfig, cube, ridges, background,
         ['planet_refit']`` records each round's planet optimum and the
         background before and after.
     """
-    from dataclasses import replace
-
     from .deviations import measure_deviations
     from .diskfit import fit_background
     from .likelihood import KinkLikelihood
@@ -302,11 +301,6 @@ def refit_background_with_planet(cfg: KinkfitConfig, cube, ridges, background,
     from .wake.emulator import make_fit_model
 
     smear = np.nan_to_num(np.asarray(traced_deviations.bias_arcsec, float))
-    if response is None or deviations is None:
-        response, deviations = forward_response(
-            cube, ridges, background.geometry, traced_deviations,
-            node_oversample=cfg.likelihood.node_subpixels,
-            back_stride=cfg.likelihood.back_node_stride)
     damping = cfg.wake.damping[0]
     pset = cfg.parameter_set(damping, with_planet=True)
     history = []
@@ -325,9 +319,6 @@ def refit_background_with_planet(cfg: KinkfitConfig, cube, ridges, background,
         kinks = np.nan_to_num(like.predict_offset(best)[0])
         new = fit_background(ridges, geometry, background.names,
                              bias=smear + kinks)
-        # the trace stage's round count (a fit read back from a trace file
-        # is a namespace without one: keep the refit's own)
-        new = replace(new, rounds=getattr(background, "rounds", new.rounds))
         history.append({
             "planet": {n: float(v) for n, v in zip(pset.free, best)},
             "log_prob": float(np.nanmax(lp)),
@@ -343,12 +334,18 @@ def refit_background_with_planet(cfg: KinkfitConfig, cube, ridges, background,
         redo.meta.update({k2: v for k2, v in traced_deviations.meta.items()
                           if k2 not in redo.meta})
         redo.meta["geometry"] = _geom_dict(background.geometry)
-        response, deviations = forward_response(
-            cube, ridges, background.geometry, redo,
-            node_oversample=cfg.likelihood.node_subpixels,
-            back_stride=cfg.likelihood.back_node_stride)
+        response, deviations = config_forward_response(
+            cfg, cube, ridges, background.geometry, redo)
     deviations.meta["planet_refit"] = history
     return background, response, deviations
+
+
+def config_forward_response(cfg: KinkfitConfig, cube, ridges, geometry,
+                            deviations):
+    """:func:`forward_response` with the node options of ``[likelihood]``."""
+    return forward_response(cube, ridges, geometry, deviations,
+                            node_oversample=cfg.likelihood.node_subpixels,
+                            back_stride=cfg.likelihood.back_node_stride)
 
 
 def forward_response(cube, ridges, geometry, deviations, *,
@@ -470,15 +467,13 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
     geometry = fit.geometry if fit is not None else cfg.geometry()
     response = None
     if cfg.likelihood.kink_model == "forward":
-        response, deviations = forward_response(
-            cube, ridges, geometry, deviations,
-            node_oversample=cfg.likelihood.node_subpixels,
-            back_stride=cfg.likelihood.back_node_stride)
-        rounds = int(getattr(cfg.disk, "refit_with_planet", 0))
+        response, deviations = config_forward_response(
+            cfg, cube, ridges, geometry, deviations)
+        rounds = cfg.disk.refit_with_planet
         if rounds > 0 and fit is not None and cfg.wake.damping:
             fit, response, deviations = refit_background_with_planet(
-                cfg, cube, ridges, fit, traced[2], rounds=rounds,
-                response=response, deviations=deviations)
+                cfg, cube, ridges, fit, traced[2], response, deviations,
+                rounds=rounds)
             geometry = fit.geometry
 
     run = FitRun(output_folder=folder, trace_file=trace_file)
