@@ -151,11 +151,18 @@ _SCHEMA: dict[str, tuple[_Field, ...]] = {
                "a Gaussian prior this many fitted sigmas wide (0: fixed)"),
         _f("node_subpixels", "int", 1, low=1, high=4,
            doc="forward kink model: wake sampled at n x n points per pixel "
-               "(2 for massive planets on pixels coarser than ~h_p r_p / 3; "
-               "~4x the cost; docs/physics/response.md)"),
+               "(2 for massive planets on pixels coarser than ~h_p r_p / 3, "
+               "~4x the cost, chosen by node_check = adapt; "
+               "docs/physics/response.md)"),
         _f("back_node_stride", "int", 2, low=1, high=4,
            doc="forward kink model: back-layer nodes on every n-th pixel "
                "(1 with node_subpixels >= 2)"),
+        _f("node_check", "choice", "adapt", choices=("adapt", "warn", "off"),
+           doc="compare the forward model's nodes with 3 x 3 sub-pixel "
+               "nodes at massive planets from the prior; when the typical "
+               "model difference exceeds the point errors (median "
+               "delta chi2 > 1) use finer nodes (adapt) or only say so "
+               "(warn)"),
     ),
     "sampler": (
         _f("walkers", "int", 32, low=4, doc="emcee walkers"),
@@ -304,6 +311,7 @@ class LikelihoodSettings:
     background_prior: float = 3.0
     node_subpixels: int = 1
     back_node_stride: int = 2
+    node_check: str = "adapt"
 
 
 @dataclass(frozen=True)
@@ -617,7 +625,8 @@ def parse_config(text: str, path: str | Path | None = None) -> KinkfitConfig:
     lk = _section(raw.get("likelihood", {}), "likelihood", file)
     likelihood = LikelihoodSettings(lk["kind"], lk["dof"], lk["kink_model"],
                                     lk["background_prior"],
-                                    lk["node_subpixels"], lk["back_node_stride"])
+                                    lk["node_subpixels"], lk["back_node_stride"],
+                                    lk["node_check"])
     s = _section(raw.get("sampler", {}), "sampler", file)
     sampler = SamplerSettings(**s)
     o = _section(raw.get("output", {}), "output", file)

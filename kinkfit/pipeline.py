@@ -216,11 +216,31 @@ def fit_assumption(cfg: KinkfitConfig, deviations, geometry, name: str, *,
         background=bg, background_sigma=bg_sigma,
         truths={k: v for k, v in (truths or {}).items()
                 if k in pset.names} or None,
-        extra_data=extra)
+        extra_data=extra, forward_model=_forward_model_record(
+            cfg, response, deviations))
     write_result(path, result, overwrite=True)
     log.info("%s: %d steps in %.1f s, converged=%s", path.name,
              outcome.n_steps, time.perf_counter() - t0, outcome.converged)
     return path, result, status
+
+
+def _forward_model_record(cfg, response, deviations) -> dict:
+    """Numbers of the forward kink model for the result file (``/model``
+    attrs): the nodes used, the node check of those nodes, refit rounds."""
+    if response is None:
+        return {}
+    out = {"node_subpixels": cfg.likelihood.node_subpixels,
+           "back_node_stride": cfg.likelihood.back_node_stride,
+           "nodes": response.n_nodes,
+           "background_refit_rounds": len(deviations.meta.get(
+               "planet_refit") or [])}
+    checks = deviations.meta.get("node_check") or []
+    if checks:
+        last = checks[-1]
+        out.update(node_check_median_delta_chi2=last["median_delta_chi2"],
+                   node_check_max_delta_chi2=last["max_delta_chi2"],
+                   node_check_mass_mjup=last["test_mass_mjup"])
+    return out
 
 
 def background_nuisance(cfg, background, deviations):
@@ -341,15 +361,17 @@ def refit_background_with_planet(cfg: KinkfitConfig, cube, ridges, background,
 
 
 def config_forward_response(cfg: KinkfitConfig, cube, ridges, geometry,
-                            deviations):
+                            deviations, emission=None):
     """:func:`forward_response` with the node options of ``[likelihood]``."""
     return forward_response(cube, ridges, geometry, deviations,
                             node_oversample=cfg.likelihood.node_subpixels,
-                            back_stride=cfg.likelihood.back_node_stride)
+                            back_stride=cfg.likelihood.back_node_stride,
+                            emission=emission)
 
 
 def forward_response(cube, ridges, geometry, deviations, *,
-                     node_oversample: int = 1, back_stride: int = 2):
+                     node_oversample: int = 1, back_stride: int = 2,
+                     emission=None):
     """Tracer response of the traced points, and the deviations it implies.
 
     The emission profile is the one the bias model used (stored in
@@ -371,16 +393,10 @@ def forward_response(cube, ridges, geometry, deviations, *,
     """
     from dataclasses import replace
 
-    from .deviations import estimate_emission, fit_emission
     from .response import build_ridge_response
-    from .synth import LineEmission
 
-    spec = (deviations.meta.get("bias") or {}).get("emission")
-    if spec:
-        emission = LineEmission(**{k: float(v) for k, v in spec.items()})
-    else:
-        emission = fit_emission(cube, geometry,
-                                estimate_emission(ridges, geometry, cube))
+    if emission is None:
+        emission = _response_emission(cube, ridges, geometry, deviations)
     # every pixel is a front-layer node and every 2nd a back-layer one: the
     # wake changes on the pixel scale near the planet and across its shocks
     # (front nodes every 2nd pixel made the demo's model kinks 6% too
@@ -401,6 +417,167 @@ def forward_response(cube, ridges, geometry, deviations, *,
         meta={**deviations.meta, "kink_model": "forward",
               "response": dict(response.meta)})
     return response, dev
+
+
+def _response_emission(cube, ridges, geometry, deviations):
+    """The emission profile of the bias model (``deviations.meta['bias']
+    ['emission']``), or fitted to the cube when missing."""
+    from .deviations import estimate_emission, fit_emission
+    from .synth import LineEmission
+
+    spec = (deviations.meta.get("bias") or {}).get("emission")
+    if spec:
+        return LineEmission(**{k: float(v) for k, v in spec.items()})
+    return fit_emission(cube, geometry,
+                        estimate_emission(ridges, geometry, cube))
+
+
+def check_response_nodes(cfg: KinkfitConfig, geometry, deviations,
+                         response, reference, *, n_planets: int = 24) -> dict:
+    """How far the response's node quadrature is from a finer one.
+
+    The forward kink model samples the wake at nodes (pixel centres, or
+    ``n x n`` sub-pixels); on pixels coarser than about a third of the
+    wake's width ``h_p r_p`` a massive planet's model kinks come out too
+    large (docs/physics/response.md).  This compares the model kinks of
+    ``response`` with those of ``reference`` (finer nodes on the same
+    points) at planets drawn from the prior of the first damping
+    assumption, with the mass set to the prior's 95th percentile (the most
+    demanding wakes the fit will visit).
+
+    Parameters
+    ----------
+    cfg : KinkfitConfig
+    geometry : kinkfit.geometry.DiskGeometry
+        Background disk (its stellar mass sets the wake).
+    deviations : kinkfit.deviations.Deviations
+        The traced points (``sigma_arcsec``, arcsec).
+    response, reference : kinkfit.response.RidgeResponse
+        The configured and the reference forward model of those points.
+    n_planets : int
+        Test planets (fixed seed from ``sampler.seed``).
+
+    Returns
+    -------
+    dict
+        ``delta_chi2`` (per test planet: sum over points of the squared
+        model-kink difference over the point error squared), ``max_delta_
+        chi2``, ``slope`` (per planet: configured on reference kinks, least
+        squares through 0), ``worst`` (the planet of the largest
+        ``delta_chi2``, parameter -> value), ``mass`` (the test mass,
+        Jupiter masses), ``nodes`` and ``reference_nodes``.
+    """
+    from .scenario import wake_disk
+    from .wake.emulator import make_fit_model
+
+    damping = cfg.wake.damping[0]
+    pset = cfg.parameter_set(damping, with_planet=True)
+    rng = np.random.default_rng([cfg.sampler.seed, 104729])
+    theta = pset.sample_prior(rng, int(n_planets))
+    j_mass = pset.free.index("mass")
+    mass = float(np.quantile(pset.sample_prior(rng, 2000)[:, j_mass], 0.95))
+    theta[:, j_mass] = mass
+    params = pset.unpack(theta)
+    model = make_fit_model(wake_disk(cfg, mstar_msun=geometry.mstar_msun),
+                           damping)
+    kinks = []
+    for resp in (response, reference):
+        dv_r, dv_phi = model(params, resp.node_r_au, resp.node_phi_rad)
+        kinks.append(resp.offsets_from_wake(dv_r, dv_phi))
+    coarse, ref = kinks
+    sigma = np.asarray(deviations.sigma_arcsec, float)[None, :]
+    ok = np.isfinite(coarse) & np.isfinite(ref)
+    diff = np.where(ok, coarse - ref, 0.0)
+    delta_chi2 = np.sum((diff / sigma) ** 2, axis=1)
+    slope = (np.sum(np.where(ok, coarse * ref, 0.0), axis=1)
+             / np.maximum(np.sum(np.where(ok, ref * ref, 0.0), axis=1),
+                          1e-300))
+    k = int(np.argmax(delta_chi2))
+    return {"delta_chi2": delta_chi2, "max_delta_chi2": float(delta_chi2[k]),
+            "slope": slope,
+            "worst": {n: float(v) for n, v in zip(pset.free, theta[k])},
+            "mass": mass, "nodes": int(response.n_nodes),
+            "reference_nodes": int(reference.n_nodes)}
+
+
+#: median delta chi2 (over the test planets of :func:`check_response_nodes`)
+#: above which the configured nodes are too coarse: the model error is then
+#: as large as the data's noise for a typical massive planet of the prior
+NODE_CHECK_LIMIT = 1.0
+#: sub-pixel nodes per pixel and axis of the node check's reference (0.99-1.00
+#: of the generator's kinks on the calibration set-up, docs/physics/response.md)
+REFERENCE_SUBPIXELS = 3
+
+
+def adapted_forward_response(cfg: KinkfitConfig, cube, ridges, geometry,
+                             deviations):
+    """:func:`config_forward_response`, with finer nodes when they matter.
+
+    With ``likelihood.node_check`` = ``"adapt"`` (default) or ``"warn"``
+    the configured nodes are compared with 3 x 3 sub-pixel nodes
+    (:func:`check_response_nodes`).  When the median delta chi2 exceeds
+    :data:`NODE_CHECK_LIMIT`, ``"adapt"`` steps up to 2 x 2 (then 3 x 3)
+    sub-pixel nodes with back-layer nodes on every pixel, and ``"warn"``
+    logs a warning and keeps them.
+
+    Returns
+    -------
+    cfg : KinkfitConfig
+        ``cfg`` with the node options actually used (``likelihood.
+        node_subpixels``, ``back_node_stride``); the config text is kept.
+    response : kinkfit.response.RidgeResponse
+    deviations : kinkfit.deviations.Deviations
+        ``meta['node_check']`` holds the check's numbers (when run).
+    """
+    from dataclasses import replace
+
+    mode = cfg.likelihood.node_check
+    emission = _response_emission(cube, ridges, geometry, deviations)
+    response, dev = config_forward_response(cfg, cube, ridges, geometry,
+                                            deviations, emission)
+    if mode == "off":
+        return cfg, response, dev
+    reference = forward_response(cube, ridges, geometry, deviations,
+                                 node_oversample=REFERENCE_SUBPIXELS,
+                                 back_stride=1, emission=emission)[0]
+    history = []
+    while True:
+        lk = cfg.likelihood
+        check = check_response_nodes(cfg, geometry, dev, response, reference)
+        median = float(np.median(check["delta_chi2"]))
+        history.append({"node_subpixels": lk.node_subpixels,
+                        "back_node_stride": lk.back_node_stride,
+                        "nodes": check["nodes"],
+                        "median_delta_chi2": median,
+                        "max_delta_chi2": check["max_delta_chi2"],
+                        "median_slope": float(np.median(check["slope"])),
+                        "test_mass_mjup": check["mass"]})
+        log.info("response nodes %dx%d (back every %d): %d nodes; against "
+                 "%d reference nodes at %.2f Mjup: delta chi2 median %.2f, "
+                 "max %.2f; kink slope median %.3f", lk.node_subpixels,
+                 lk.node_subpixels, lk.back_node_stride, check["nodes"],
+                 check["reference_nodes"], check["mass"], median,
+                 check["max_delta_chi2"], history[-1]["median_slope"])
+        if median <= NODE_CHECK_LIMIT or lk.node_subpixels >= REFERENCE_SUBPIXELS:
+            break
+        if mode == "warn":
+            log.warning(
+                "the forward model's nodes are too coarse for this cube: "
+                "its kinks differ from sub-pixel nodes by delta chi2 %.1f "
+                "(median over planets of %.2f Mjup); set likelihood."
+                "node_subpixels = 2 and back_node_stride = 1 (or "
+                "node_check = \"adapt\")", median, check["mass"])
+            break
+        finer = lk.node_subpixels + 1
+        log.info("response nodes too coarse (median delta chi2 %.2f > "
+                 "%.1f): using %dx%d sub-pixel nodes, back layer on every "
+                 "pixel", median, NODE_CHECK_LIMIT, finer, finer)
+        cfg = replace(cfg, likelihood=replace(lk, node_subpixels=finer,
+                                              back_node_stride=1))
+        response, dev = config_forward_response(cfg, cube, ridges, geometry,
+                                                deviations, emission)
+    dev.meta["node_check"] = history
+    return cfg, response, dev
 
 
 def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
@@ -467,13 +644,16 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
     geometry = fit.geometry if fit is not None else cfg.geometry()
     response = None
     if cfg.likelihood.kink_model == "forward":
-        response, deviations = config_forward_response(
+        cfg, response, deviations = adapted_forward_response(
             cfg, cube, ridges, geometry, deviations)
         rounds = cfg.disk.refit_with_planet
         if rounds > 0 and fit is not None and cfg.wake.damping:
+            checks = deviations.meta.get("node_check")
             fit, response, deviations = refit_background_with_planet(
                 cfg, cube, ridges, fit, traced[2], response, deviations,
                 rounds=rounds)
+            if checks:
+                deviations.meta["node_check"] = checks
             geometry = fit.geometry
 
     run = FitRun(output_folder=folder, trace_file=trace_file)

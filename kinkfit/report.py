@@ -277,6 +277,24 @@ def _convergence_text(result) -> str:
     return "\n".join(lines)
 
 
+def _kink_text(forward: dict) -> str:
+    """How the model kink was computed (first-order, or the forward model
+    with its nodes and node check, ``FitResult.forward_model``)."""
+    if not forward:
+        return ("kink = line-of-sight velocity perturbation divided by the "
+                "background velocity gradient (first order)")
+    n = int(forward.get("node_subpixels", 1))
+    text = (f"kink = traced peak of the beam-smeared model channel (forward "
+            f"model; wake at {int(forward.get('nodes', 0))} nodes, {n} x {n} "
+            f"per pixel, back layer every "
+            f"{int(forward.get('back_node_stride', 1))} pixel(s)")
+    if "node_check_median_delta_chi2" in forward:
+        text += (f"; against 3 x 3 sub-pixel nodes at "
+                 f"{forward['node_check_mass_mjup']:.2f} M_J: median "
+                 f"delta chi2 {forward['node_check_median_delta_chi2']:.2f}")
+    return text + ")"
+
+
 def _thermal(result):
     hr = result.fixed.get("aspect_ratio")
     if hr is None and "aspect_ratio" in result.param_names:
@@ -347,9 +365,8 @@ def write_report(result, folder, *, baseline=None, truths=None,
     model = ("planet-free baseline (zero wake), jitter only"
              if result.is_baseline else
              "planet wake: linear response near the planet (GR01), "
-             "Burgers-steepened nonlinear wave far from it (R02); kink = "
-             "line-of-sight velocity perturbation divided by the background "
-             "velocity gradient")
+             "Burgers-steepened nonlinear wave far from it (R02); "
+             + _kink_text(result.forward_model))
     fixed = ", ".join(f"{k} = {v:g}" for k, v in result.fixed.items()) or "none"
     versions = "\n".join(f"| {k} | {v} |" for k, v in result.versions.items())
     values = {

@@ -52,6 +52,13 @@ path                               content
 ``/model/map_offset_arcsec``       (npts,) displacement of the MAP model
 ``/model/median_offset_arcsec``    (npts,) pointwise posterior median of the
                                    model displacement (over the subset)
+``/model`` attrs                   forward kink model actually used, str ->
+                                   float: ``node_subpixels``,
+                                   ``back_node_stride``, ``nodes``, the node
+                                   check (``node_check_median_delta_chi2``,
+                                   ``node_check_max_delta_chi2``,
+                                   ``node_check_mass_mjup``, of the nodes
+                                   used) and ``background_refit_rounds``
 ``/disk/values`` attrs             background-disk parameters -> float
                                    (after the refit with the planet when
                                    ``disk.refit_with_planet`` > 0; the trace
@@ -156,6 +163,7 @@ class FitResult:
     timings: dict = field(default_factory=dict)
     counters: dict = field(default_factory=dict)
     comparison: dict = field(default_factory=dict)
+    forward_model: dict = field(default_factory=dict)
     created_utc: str = ""
     package_version: str = ""
     versions: dict = field(default_factory=dict)
@@ -253,6 +261,7 @@ def assemble_result(outcome, likelihood, *, damping: str,
                     truths: dict | None = None,
                     comparison: dict | None = None,
                     extra_data: dict | None = None,
+                    forward_model: dict | None = None,
                     max_pointwise: int = 400) -> FitResult:
     """Build a :class:`FitResult` from a sampler outcome and its likelihood.
 
@@ -272,6 +281,9 @@ def assemble_result(outcome, likelihood, *, damping: str,
         Injected values (synthetic data), canonical units.
     extra_data : dict of str -> ndarray (npts,), optional
         More traced arrays to store (e.g. ``x_arcsec``, ``y_arcsec``).
+    forward_model : dict of str -> float, optional
+        Settings and checks of the forward kink model (nodes actually used,
+        node check, background refit rounds).
     max_pointwise : int
         Number of posterior samples (evenly spaced) whose per-point
         log-likelihood is stored.
@@ -338,6 +350,7 @@ def assemble_result(outcome, likelihood, *, damping: str,
         timings={k: float(v) for k, v in outcome.timings.items()},
         counters={k: int(v) for k, v in likelihood.counters.items()},
         comparison={k: float(v) for k, v in (comparison or {}).items()},
+        forward_model={k: float(v) for k, v in (forward_model or {}).items()},
         created_utc=_now_utc(), package_version=versions["kinkfit"],
         versions=versions)
 
@@ -419,6 +432,7 @@ def _write(f, r: FitResult):
     mod = f.create_group("model", track_order=True)
     _put(mod, "map_offset_arcsec", r.map_offset_arcsec)
     _put(mod, "median_offset_arcsec", r.median_offset_arcsec)
+    _attrs(mod, r.forward_model, float)
 
     disk = f.create_group("disk", track_order=True)
     _attrs(disk.create_group("values", track_order=True), r.background, float)
@@ -532,6 +546,7 @@ def _read(f, path) -> FitResult:
         timings=_a(f["diagnostics/timings"], float),
         counters=_a(f["diagnostics/counters"], int),
         comparison=_a(f["comparison"], float),
+        forward_model=_a(f["model"], float),
         created_utc=str(f.attrs["created_utc"]),
         package_version=str(f.attrs["package_version"]), versions=versions)
 

@@ -39,6 +39,8 @@ def fit(tmp_path_factory):
                                             "inclination": 0.5},
                           truths=TRUTH, comparison={"baseline_max_loglike": -3.5},
                           extra_data={"x_arcsec": rng.normal(size=60)},
+                          forward_model={"node_subpixels": 2,
+                                         "node_check_median_delta_chi2": 0.3},
                           max_pointwise=50)
     return res, lik, out
 
