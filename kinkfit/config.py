@@ -158,11 +158,11 @@ _SCHEMA: dict[str, tuple[_Field, ...]] = {
            doc="forward kink model: back-layer nodes on every n-th pixel "
                "(1 with node_subpixels >= 2)"),
         _f("node_check", "choice", "adapt", choices=("adapt", "warn", "off"),
-           doc="compare the forward model's nodes with 3 x 3 sub-pixel "
-               "nodes at massive planets from the prior; when the typical "
-               "model difference exceeds the point errors (median "
-               "delta chi2 > 1) use finer nodes (adapt) or only say so "
-               "(warn)"),
+           doc="compare the forward model's nodes with one step finer "
+               "sub-pixel nodes at the background refit's best planet (mass "
+               "+30%; massive prior planets without a refit); when the model "
+               "difference exceeds the point errors (delta chi2 > 1) use the "
+               "finer nodes (adapt) or only say so (warn)"),
     ),
     "sampler": (
         _f("walkers", "int", 32, low=4, doc="emcee walkers"),

@@ -234,12 +234,15 @@ def _forward_model_record(cfg, response, deviations) -> dict:
            "nodes": response.n_nodes,
            "background_refit_rounds": len(deviations.meta.get(
                "planet_refit") or [])}
-    checks = deviations.meta.get("node_check") or []
-    if checks:
-        last = checks[-1]
-        out.update(node_check_median_delta_chi2=last["median_delta_chi2"],
-                   node_check_max_delta_chi2=last["max_delta_chi2"],
-                   node_check_mass_mjup=last["test_mass_mjup"])
+    check = deviations.meta.get("node_check")
+    if check:
+        out.update(node_check_at_best_planet=float(
+                       check["test_planets"] == "best planet"),
+                   node_check_subpixels=check["node_subpixels"],
+                   node_check_reference_subpixels=check["reference_subpixels"],
+                   node_check_median_delta_chi2=check["median_delta_chi2"],
+                   node_check_max_delta_chi2=check["max_delta_chi2"],
+                   node_check_mass_mjup=check["test_mass_mjup"])
     return out
 
 
@@ -432,8 +435,21 @@ def _response_emission(cube, ridges, geometry, deviations):
                         estimate_emission(ridges, geometry, cube))
 
 
+#: the node check's test planet is the background refit's best planet
+#: with its mass raised by this factor (the upper part of a typical mass
+#: posterior, whose 68% interval spans +-10-25%; docs/calibration.md)
+NODE_CHECK_MASS_MARGIN = 1.3
+
+#: delta chi2 (median over the test planets of :func:`check_response_nodes`)
+#: above which the configured nodes are too coarse: the quadrature error of
+#: the model kinks is then as large as the data's noise (common practice, no
+#: source)
+NODE_CHECK_LIMIT = 1.0
+
+
 def check_response_nodes(cfg: KinkfitConfig, geometry, deviations,
-                         response, reference, *, n_planets: int = 24) -> dict:
+                         response, reference, *, planet: dict | None = None,
+                         n_planets: int = 64) -> dict:
     """How far the response's node quadrature is from a finer one.
 
     The forward kink model samples the wake at nodes (pixel centres, or
@@ -441,9 +457,11 @@ def check_response_nodes(cfg: KinkfitConfig, geometry, deviations,
     wake's width ``h_p r_p`` a massive planet's model kinks come out too
     large (docs/physics/response.md).  This compares the model kinks of
     ``response`` with those of ``reference`` (finer nodes on the same
-    points) at planets drawn from the prior of the first damping
-    assumption, with the mass set to the prior's 95th percentile (the most
-    demanding wakes the fit will visit).
+    points) at ``planet`` with its mass times
+    :data:`NODE_CHECK_MASS_MARGIN`, or, without a planet, at ``n_planets``
+    planets drawn from the prior of the first damping assumption with the
+    mass set to the prior's 95th percentile (the most demanding wakes the
+    fit may visit).
 
     Parameters
     ----------
@@ -454,8 +472,12 @@ def check_response_nodes(cfg: KinkfitConfig, geometry, deviations,
         The traced points (``sigma_arcsec``, arcsec).
     response, reference : kinkfit.response.RidgeResponse
         The configured and the reference forward model of those points.
+    planet : dict of str -> float, optional
+        A planet of the first damping assumption's parameter set (e.g. the
+        background refit's optimum), canonical units (Mjup, au, deg, ...).
     n_planets : int
-        Test planets (fixed seed from ``sampler.seed``).
+        Prior test planets when ``planet`` is None (fixed seed from
+        ``sampler.seed``).
 
     Returns
     -------
@@ -472,10 +494,15 @@ def check_response_nodes(cfg: KinkfitConfig, geometry, deviations,
 
     damping = cfg.wake.damping[0]
     pset = cfg.parameter_set(damping, with_planet=True)
-    rng = np.random.default_rng([cfg.sampler.seed, 104729])
-    theta = pset.sample_prior(rng, int(n_planets))
     j_mass = pset.free.index("mass")
-    mass = float(np.quantile(pset.sample_prior(rng, 2000)[:, j_mass], 0.95))
+    if planet is not None:
+        theta = pset.pack({n: planet[n] for n in pset.free})
+        mass = float(theta[0, j_mass]) * NODE_CHECK_MASS_MARGIN
+    else:
+        rng = np.random.default_rng([cfg.sampler.seed, 104729])
+        theta = pset.sample_prior(rng, int(n_planets))
+        mass = float(np.quantile(pset.sample_prior(rng, 2000)[:, j_mass],
+                                 0.95))
     theta[:, j_mass] = mass
     params = pset.unpack(theta)
     model = make_fit_model(wake_disk(cfg, mstar_msun=geometry.mstar_msun),
@@ -500,25 +527,30 @@ def check_response_nodes(cfg: KinkfitConfig, geometry, deviations,
             "reference_nodes": int(reference.n_nodes)}
 
 
-#: median delta chi2 (over the test planets of :func:`check_response_nodes`)
-#: above which the configured nodes are too coarse: the model error is then
-#: as large as the data's noise for a typical massive planet of the prior
-NODE_CHECK_LIMIT = 1.0
-#: sub-pixel nodes per pixel and axis of the node check's reference (0.99-1.00
-#: of the generator's kinks on the calibration set-up, docs/physics/response.md)
-REFERENCE_SUBPIXELS = 3
-
-
 def adapted_forward_response(cfg: KinkfitConfig, cube, ridges, geometry,
-                             deviations):
+                             deviations, *, planet: dict | None = None,
+                             current=None):
     """:func:`config_forward_response`, with finer nodes when they matter.
 
     With ``likelihood.node_check`` = ``"adapt"`` (default) or ``"warn"``
-    the configured nodes are compared with 3 x 3 sub-pixel nodes
-    (:func:`check_response_nodes`).  When the median delta chi2 exceeds
-    :data:`NODE_CHECK_LIMIT`, ``"adapt"`` steps up to 2 x 2 (then 3 x 3)
-    sub-pixel nodes with back-layer nodes on every pixel, and ``"warn"``
-    logs a warning and keeps them.
+    the configured nodes (``n x n`` sub-pixels) are compared with
+    ``(n+1) x (n+1)`` sub-pixel nodes and back-layer nodes on every pixel
+    (:func:`check_response_nodes`, at ``planet`` when given).  When the
+    median delta chi2 exceeds :data:`NODE_CHECK_LIMIT`, ``"adapt"`` uses
+    the finer nodes and ``"warn"`` logs a warning and keeps the configured
+    ones.  One step is enough where it was measured: 2 x 2 nodes are within
+    median delta chi2 0.3-0.5 of 3 x 3 ones on the calibration set-up
+    (docs/physics/response.md, tests/test_node_check.py).
+
+    Parameters
+    ----------
+    cfg, cube, ridges, geometry, deviations
+        As for :func:`config_forward_response`.
+    planet : dict of str -> float, optional
+        Test planet (the background refit's optimum); else prior draws.
+    current : (RidgeResponse, Deviations), optional
+        The response with the configured nodes at ``geometry``, when it is
+        already built.
 
     Returns
     -------
@@ -531,52 +563,55 @@ def adapted_forward_response(cfg: KinkfitConfig, cube, ridges, geometry,
     """
     from dataclasses import replace
 
-    mode = cfg.likelihood.node_check
+    lk = cfg.likelihood
     emission = _response_emission(cube, ridges, geometry, deviations)
-    response, dev = config_forward_response(cfg, cube, ridges, geometry,
-                                            deviations, emission)
-    if mode == "off":
+    if current is None:
+        current = config_forward_response(cfg, cube, ridges, geometry,
+                                          deviations, emission)
+    response, dev = current
+    if lk.node_check == "off":
         return cfg, response, dev
-    reference = forward_response(cube, ridges, geometry, deviations,
-                                 node_oversample=REFERENCE_SUBPIXELS,
-                                 back_stride=1, emission=emission)[0]
-    history = []
-    while True:
-        lk = cfg.likelihood
-        check = check_response_nodes(cfg, geometry, dev, response, reference)
-        median = float(np.median(check["delta_chi2"]))
-        history.append({"node_subpixels": lk.node_subpixels,
-                        "back_node_stride": lk.back_node_stride,
-                        "nodes": check["nodes"],
-                        "median_delta_chi2": median,
-                        "max_delta_chi2": check["max_delta_chi2"],
-                        "median_slope": float(np.median(check["slope"])),
-                        "test_mass_mjup": check["mass"]})
-        log.info("response nodes %dx%d (back every %d): %d nodes; against "
-                 "%d reference nodes at %.2f Mjup: delta chi2 median %.2f, "
-                 "max %.2f; kink slope median %.3f", lk.node_subpixels,
-                 lk.node_subpixels, lk.back_node_stride, check["nodes"],
-                 check["reference_nodes"], check["mass"], median,
-                 check["max_delta_chi2"], history[-1]["median_slope"])
-        if median <= NODE_CHECK_LIMIT or lk.node_subpixels >= REFERENCE_SUBPIXELS:
-            break
-        if mode == "warn":
-            log.warning(
-                "the forward model's nodes are too coarse for this cube: "
-                "its kinks differ from sub-pixel nodes by delta chi2 %.1f "
-                "(median over planets of %.2f Mjup); set likelihood."
-                "node_subpixels = 2 and back_node_stride = 1 (or "
-                "node_check = \"adapt\")", median, check["mass"])
-            break
-        finer = lk.node_subpixels + 1
-        log.info("response nodes too coarse (median delta chi2 %.2f > "
-                 "%.1f): using %dx%d sub-pixel nodes, back layer on every "
-                 "pixel", median, NODE_CHECK_LIMIT, finer, finer)
+    finer = lk.node_subpixels + 1
+    fine_response, fine_dev = forward_response(
+        cube, ridges, geometry, deviations, node_oversample=finer,
+        back_stride=1, emission=emission)
+    check = check_response_nodes(cfg, geometry, dev, response, fine_response,
+                                 planet=planet)
+    median = float(np.median(check["delta_chi2"]))
+    too_coarse = median > NODE_CHECK_LIMIT
+    record = {"node_subpixels": lk.node_subpixels,
+              "back_node_stride": lk.back_node_stride,
+              "reference_subpixels": finer, "nodes": check["nodes"],
+              "reference_nodes": check["reference_nodes"],
+              "test_planets": "best planet" if planet is not None
+              else "prior",
+              "median_delta_chi2": median,
+              "max_delta_chi2": check["max_delta_chi2"],
+              "median_slope": float(np.median(check["slope"])),
+              "test_mass_mjup": check["mass"],
+              "adapted": bool(too_coarse and lk.node_check == "adapt")}
+    log.info("response nodes %dx%d (back every %d, %d nodes) against %dx%d "
+             "(%d nodes) at %s, %.2f Mjup: delta chi2 median %.2f, max "
+             "%.2f; kink slope median %.3f", lk.node_subpixels,
+             lk.node_subpixels, lk.back_node_stride, check["nodes"], finer,
+             finer, check["reference_nodes"], record["test_planets"],
+             check["mass"], median, check["max_delta_chi2"],
+             record["median_slope"])
+    if too_coarse and lk.node_check == "warn":
+        log.warning(
+            "the forward model's nodes are too coarse for this cube: its "
+            "kinks differ from %dx%d sub-pixel nodes by delta chi2 %.1f "
+            "(at %.2f Mjup); set likelihood.node_subpixels = %d and "
+            "back_node_stride = 1 (or node_check = \"adapt\")", finer,
+            finer, median, check["mass"], finer)
+    elif too_coarse:
+        log.info("response nodes too coarse (delta chi2 %.2f > %.1f): using "
+                 "%dx%d sub-pixel nodes, back layer on every pixel", median,
+                 NODE_CHECK_LIMIT, finer, finer)
         cfg = replace(cfg, likelihood=replace(lk, node_subpixels=finer,
                                               back_node_stride=1))
-        response, dev = config_forward_response(cfg, cube, ridges, geometry,
-                                                deviations, emission)
-    dev.meta["node_check"] = history
+        response, dev = fine_response, fine_dev
+    dev.meta["node_check"] = record
     return cfg, response, dev
 
 
@@ -644,17 +679,21 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
     geometry = fit.geometry if fit is not None else cfg.geometry()
     response = None
     if cfg.likelihood.kink_model == "forward":
-        cfg, response, deviations = adapted_forward_response(
+        response, deviations = config_forward_response(
             cfg, cube, ridges, geometry, deviations)
         rounds = cfg.disk.refit_with_planet
+        best = None
         if rounds > 0 and fit is not None and cfg.wake.damping:
-            checks = deviations.meta.get("node_check")
             fit, response, deviations = refit_background_with_planet(
                 cfg, cube, ridges, fit, traced[2], response, deviations,
                 rounds=rounds)
-            if checks:
-                deviations.meta["node_check"] = checks
             geometry = fit.geometry
+            best = deviations.meta["planet_refit"][-1]["planet"]
+        # the nodes are checked at the refit's best planet (prior draws
+        # without a refit) and refined when the quadrature error matters
+        cfg, response, deviations = adapted_forward_response(
+            cfg, cube, ridges, geometry, deviations, planet=best,
+            current=(response, deviations))
 
     run = FitRun(output_folder=folder, trace_file=trace_file)
     names = list(cfg.wake.damping) + ([BASELINE] if cfg.wake.baseline else [])

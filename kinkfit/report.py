@@ -289,8 +289,10 @@ def _kink_text(forward: dict) -> str:
             f"per pixel, back layer every "
             f"{int(forward.get('back_node_stride', 1))} pixel(s)")
     if "node_check_median_delta_chi2" in forward:
-        text += (f"; against 3 x 3 sub-pixel nodes at "
-                 f"{forward['node_check_mass_mjup']:.2f} M_J: median "
+        a = int(forward["node_check_subpixels"])
+        b = int(forward["node_check_reference_subpixels"])
+        text += (f"; node check {a} x {a} against {b} x {b} sub-pixel nodes "
+                 f"at {forward['node_check_mass_mjup']:.2f} M_J: median "
                  f"delta chi2 {forward['node_check_median_delta_chi2']:.2f}")
     return text + ")"
 

@@ -55,10 +55,14 @@ path                               content
 ``/model`` attrs                   forward kink model actually used, str ->
                                    float: ``node_subpixels``,
                                    ``back_node_stride``, ``nodes``, the node
-                                   check (``node_check_median_delta_chi2``,
-                                   ``node_check_max_delta_chi2``,
-                                   ``node_check_mass_mjup``, of the nodes
-                                   used) and ``background_refit_rounds``
+                                   check (configured ``node_check_
+                                   subpixels`` against ``node_check_
+                                   reference_subpixels``: ``node_check_
+                                   median_delta_chi2``, ``..._max_delta_
+                                   chi2``, test mass ``node_check_mass_
+                                   mjup``, 1 if at the refit's best planet
+                                   ``node_check_at_best_planet``) and
+                                   ``background_refit_rounds``
 ``/disk/values`` attrs             background-disk parameters -> float
                                    (after the refit with the planet when
                                    ``disk.refit_with_planet`` > 0; the trace

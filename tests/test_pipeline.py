@@ -145,8 +145,8 @@ def test_injected_planet_recovered_small(tmp_path, case):
     """CI-sized recovery (tests/recovery_cases.py SMALL_CASES): cubes made by
     the generator with an injected planet (direct wake model, 3x3 sub-pixel
     quadrature, beam, noise), traced, background disk fitted, forward kink
-    model (2x2 sub-pixel nodes, chosen by the node check), 1500 steps of 16
-    walkers (not converged: N/tau ~ 20-40).  Oracle:
+    model (2x2 sub-pixel nodes chosen by the node check on the near-side
+    case), 1500 steps of 16 walkers (not converged: N/tau ~ 20-40).  Oracle:
     the injected truth.  Acceptance (issue text): mass, radius and azimuth
     inside the central 95% interval; radius and azimuth inside 68% for the
     high-SNR cases.  ~60-90 s per case on a quiet core."""
@@ -157,10 +157,16 @@ def test_injected_planet_recovered_small(tmp_path, case):
     res = read_result(run.results["none"])
     # the background disk was fitted, not taken from the config
     assert res.background and all(v > 0 for v in res.background_sigma.values())
-    # the nodes the check chose for these 4-au pixels (docs/physics/
-    # response.md: median delta chi2 3-4.5 with the default nodes)
-    assert res.forward_model["node_subpixels"] == 2
-    assert res.forward_model["node_check_median_delta_chi2"] <= 1.0
+    # the node check at the refit's best planet finds the default nodes too
+    # coarse for these 4-au pixels (delta chi2 1.8-3.5 against 2x2,
+    # docs/physics/response.md); with "adapt" the fit used 2x2 sub-pixel
+    # nodes, with "warn" (two cases, to save CI time) the 1x1 nodes
+    fm = res.forward_model
+    assert fm["node_check_at_best_planet"] == 1.0
+    assert fm["node_check_subpixels"] == 1
+    assert fm["node_check_median_delta_chi2"] > 1.0
+    used = 2 if values["node_check"] == "adapt" else 1
+    assert fm["node_subpixels"] == used
     # 1500 steps are not converged (N/tau ~ 20-40): the interval ends carry
     # a Monte Carlo error (0.3 deg of the near-side azimuth's 68% end)
     for name in ("mass", "radius", "azimuth"):
