@@ -564,13 +564,13 @@ def adapted_forward_response(cfg: KinkfitConfig, cube, ridges, geometry,
     from dataclasses import replace
 
     lk = cfg.likelihood
-    emission = _response_emission(cube, ridges, geometry, deviations)
     if current is None:
         current = config_forward_response(cfg, cube, ridges, geometry,
-                                          deviations, emission)
+                                          deviations)
     response, dev = current
     if lk.node_check == "off":
         return cfg, response, dev
+    emission = _response_emission(cube, ridges, geometry, deviations)
     finer = lk.node_subpixels + 1
     fine_response, fine_dev = forward_response(
         cube, ridges, geometry, deviations, node_oversample=finer,

@@ -23,6 +23,7 @@ from kinkfit.cube import read_cube
 from kinkfit.deviations import measure_deviations
 from kinkfit.pipeline import (NODE_CHECK_LIMIT, adapted_forward_response,
                               check_response_nodes, forward_response)
+from kinkfit.priors import LogUniform
 from kinkfit.scenario import (line_emission, planet_perturbation,
                               synth_from_config)
 from kinkfit.trace import trace_ridges
@@ -111,7 +112,6 @@ def test_light_planets_keep_the_default_nodes(coarse):
     # below the noise does not need a finer quadrature)
     cfg, noisy, _, ridges, geom, dev = coarse
     low = dict(cfg.planet_priors)
-    from kinkfit.priors import LogUniform
     low["mass"] = LogUniform(0.1, 0.3)
     light = replace(_with(cfg, node_subpixels=1, back_node_stride=2,
                           node_check="adapt"), planet_priors=low)
