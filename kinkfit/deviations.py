@@ -34,7 +34,7 @@ import numpy as np
 
 from .errors import KinkfitError
 
-__all__ = ["Deviations", "measure_deviations", "SmearingBias",
+__all__ = ["Deviations", "measure_deviations", "keep_measurable", "SmearingBias",
            "estimate_smearing_bias", "estimate_emission", "model_cube",
            "signed_offsets"]
 
@@ -290,6 +290,39 @@ def measure_deviations(ridges, fit_or_geom, *, bias=None,
         meta["bias"] = dict(bias.meta)
     return Deviations(ridges, r, phi, z, a_r, a_phi, grad, off - b, off, b,
                       ridges.sigma_arcsec, dist - b, meta=meta)
+
+
+def keep_measurable(dev: Deviations) -> tuple[Deviations, np.ndarray]:
+    """Drop the points the background disk cannot place (logged).
+
+    A point traced at one geometry can fall outside the fitted one: off a
+    steep or strongly flared emitting surface no disk radius projects onto
+    it (``r_au``/``phi_rad`` NaN), or its velocity gradient vanishes.  Such
+    points carry no kink measurement and are removed, with a warning that
+    counts them.
+
+    Parameters
+    ----------
+    dev : Deviations
+
+    Returns
+    -------
+    kept : Deviations
+        The measurable points (``dev`` itself when all are).
+    mask : ndarray of bool, shape (n,)
+        Which of ``dev``'s points were kept.
+    """
+    mask = np.ones(len(dev), bool)
+    for name in ("r_au", "phi_rad", "a_r", "a_phi", "grad_kms_per_arcsec",
+                 "offset_arcsec", "sigma_arcsec"):
+        mask &= np.isfinite(getattr(dev, name))
+    mask &= np.asarray(dev.grad_kms_per_arcsec) > 0
+    if mask.all():
+        return dev, mask
+    log.warning("%d of %d traced points cannot be placed on the fitted "
+                "background disk (no deprojected radius or velocity "
+                "gradient) and are dropped", int((~mask).sum()), mask.size)
+    return dev.select(mask), mask
 
 
 # ---------------------------------------------------------------------------

@@ -311,11 +311,13 @@ def refit_background_with_planet(cfg: KinkfitConfig, cube, ridges, background,
         The refitted background.
     response : kinkfit.response.RidgeResponse
     deviations : kinkfit.deviations.Deviations
-        Forward-model deviations on the refitted background; ``meta
+        Forward-model deviations on the refitted background, at the ridge
+        points it can place (``deviations.ridges``: a subset of ``ridges``
+        when some fall off the refitted surface); ``meta
         ['planet_refit']`` records each round's planet optimum and the
         background before and after.
     """
-    from .deviations import measure_deviations
+    from .deviations import keep_measurable, measure_deviations
     from .diskfit import fit_background
     from .likelihood import KinkLikelihood
     from .sampling import find_modes
@@ -353,7 +355,9 @@ def refit_background_with_planet(cfg: KinkfitConfig, cube, ridges, background,
                                          history[-1]["planet"].items()),
                  new.summary().replace("\n", "; "))
         background = new
-        redo = measure_deviations(ridges, background, bias=smear)
+        redo, kept = keep_measurable(
+            measure_deviations(ridges, background, bias=smear))
+        ridges, smear = redo.ridges, smear[kept]
         redo.meta.update({k2: v for k2, v in traced_deviations.meta.items()
                           if k2 not in redo.meta})
         redo.meta["geometry"] = _geom_dict(background.geometry)
@@ -688,6 +692,7 @@ def run_fit(cfg: KinkfitConfig, *, force: bool = False, resume: bool = True,
                 cfg, cube, ridges, fit, traced[2], response, deviations,
                 rounds=rounds)
             geometry = fit.geometry
+            ridges = deviations.ridges  # points the refitted disk can place
             best = deviations.meta["planet_refit"][-1]["planet"]
         # the nodes are checked at the refit's best planet (prior draws
         # without a refit) and refined when the quadrature error matters

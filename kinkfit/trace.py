@@ -787,7 +787,8 @@ def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
         ``deviations.meta['bias']`` describes the bias correction.
     """
     from .deviations import (estimate_emission, estimate_smearing_bias,
-                             fit_emission, measure_deviations)
+                             fit_emission, keep_measurable,
+                             measure_deviations)
     from .diskfit import trace_and_fit
     if cube is None:
         cube = load_cube(cfg)
@@ -839,7 +840,13 @@ def run_trace(cfg, *, cube=None, rounds: int = 3, fit_background=None):
         # bias of the final ridges at the final geometry
         bias = estimate_smearing_bias(cube, ridges, geom, settings,
                                       emission=emission_for(ridges, geom))
-    dev = measure_deviations(ridges, fit if fit is not None else geom, bias=bias)
+    dev, _ = keep_measurable(
+        measure_deviations(ridges, fit if fit is not None else geom, bias=bias))
+    if len(dev) == 0:
+        raise KinkfitError("none of the traced points lies on the fitted "
+                           "background disk: check the [disk] start geometry",
+                           file=getattr(cfg, "path", None), key="disk")
+    ridges = dev.ridges
     dev.meta["geometry"] = _geom_dict(geom)
     dev.meta["cube_sha256"] = cube.provenance.get("sha256", "")
     dev.meta["cube_path"] = str(cube.provenance.get("path", ""))

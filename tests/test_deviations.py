@@ -16,7 +16,8 @@ from synthcases import BEAM, gaussian_blob, make_case, truth_geometry
 
 from kinkfit.config import TraceSettings
 from kinkfit.deviations import (Deviations, estimate_smearing_bias,
-                                measure_deviations, signed_offsets)
+                                keep_measurable, measure_deviations,
+                                signed_offsets)
 from kinkfit.geometry import (background_velocity, disk_to_sky,
                               projection_coefficients, surface_point,
                               velocity_gradient)
@@ -145,6 +146,29 @@ def test_deviations_container_and_likelihood_interface():
     assert np.all(np.isfinite(dev.r_au)) and np.all(np.isfinite(dev.offset_arcsec))
     with pytest.raises(Exception):
         measure_deviations(ridges, geom, bias=np.zeros(3))
+
+
+def test_points_off_the_fitted_disk_are_dropped(caplog):
+    # points traced on the full disk, measured against the same disk cut at
+    # r_max: by the definition of the layer (geometry.sky_to_disk), exactly
+    # the points deprojected beyond r_max have no radius there and must be
+    # dropped, the others kept unchanged
+    import dataclasses
+    geom = truth_geometry()
+    _, clean, _, _ = make_case(geom, seed=2)
+    ridges = trace_ridges(clean, geom, BOTH)
+    full = measure_deviations(ridges, geom)
+    r_cut = float(np.percentile(full.r_au, 80))
+    cut = measure_deviations(ridges, dataclasses.replace(geom, r_max_au=r_cut))
+    with caplog.at_level("WARNING", logger="kinkfit.deviations"):
+        kept, mask = keep_measurable(cut)
+    np.testing.assert_array_equal(mask, full.r_au <= r_cut)
+    assert 0 < (~mask).sum() < mask.size
+    assert f"{(~mask).sum()} of {mask.size} traced points" in caplog.text
+    assert np.all(np.isfinite(kept.r_au)) and len(kept.ridges) == len(kept)
+    np.testing.assert_array_equal(kept.offset_arcsec, full.offset_arcsec[mask])
+    same, all_kept = keep_measurable(full)
+    assert same is full and all_kept.all()
 
 
 def test_figures():
