@@ -158,13 +158,16 @@ def test_injected_planet_recovered_small(tmp_path, case):
     # the background disk was fitted, not taken from the config
     assert res.background and all(v > 0 for v in res.background_sigma.values())
     # the node check at the refit's best planet finds the default nodes too
-    # coarse for these 4-au pixels (delta chi2 1.8-3.5 against 2x2,
-    # docs/physics/response.md); with "adapt" the fit used 2x2 sub-pixel
-    # nodes, with "warn" (two cases, to save CI time) the 1x1 nodes
+    # coarse for the near-side case's 4-au pixels (delta chi2 > 1 against
+    # 2x2, docs/physics/response.md) and the fit used 2x2 sub-pixel nodes;
+    # the other two run with "warn" (to save CI time) and keep 1x1 nodes
+    # (small-low measured 0.68 since the per-channel noise is read from
+    # the negative pixels, 2.9 before)
     fm = res.forward_model
     assert fm["node_check_at_best_planet"] == 1.0
     assert fm["node_check_subpixels"] == 1
-    assert fm["node_check_median_delta_chi2"] > 1.0
+    if values["node_check"] == "adapt":
+        assert fm["node_check_median_delta_chi2"] > 1.0
     used = 2 if values["node_check"] == "adapt" else 1
     assert fm["node_subpixels"] == used
     # 1500 steps are not converged (N/tau ~ 20-40): the interval ends carry
