@@ -162,7 +162,7 @@ def test_injected_planet_recovered_small(tmp_path, case):
     # 2x2, docs/physics/response.md) and the fit used 2x2 sub-pixel nodes;
     # the other two run with "warn" (to save CI time) and keep 1x1 nodes
     # (small-low measured 0.68 since the per-channel noise is read from
-    # the negative pixels, 2.9 before)
+    # the negative pixels, 1.8 before)
     fm = res.forward_model
     assert fm["node_check_at_best_planet"] == 1.0
     assert fm["node_check_subpixels"] == 1
