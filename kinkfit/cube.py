@@ -953,13 +953,8 @@ def _robust_noise(data, line_free):
     """Per-channel noise and the noise of the line-free channels pooled,
     both from :func:`channel_noise`."""
     nchan = data.shape[0]
-    per = np.full(nchan, np.nan)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        for k in range(nchan):
-            per[k] = channel_noise(data[k])
-        pooled = data[list(line_free)]
-        total = channel_noise(pooled)
+    per = np.array([channel_noise(data[k]) for k in range(nchan)])
+    total = channel_noise(data[list(line_free)])
     return per, total
 
 

@@ -589,12 +589,7 @@ def estimate_smearing_bias(cube, ridges, fit_or_geom, settings, *,
     refine = emission is None and model is None
     if refine:
         emission = estimate_emission(ridges, geom, cube)
-    cuts = dict(x_arcsec=ridges.cut_x_arcsec, y_arcsec=ridges.cut_y_arcsec,
-                channel=ridges.channel, surface=ridges.surface,
-                dir_x=ridges.dir_x, dir_y=ridges.dir_y,
-                template_arcsec=ridges.template_arcsec,
-                half_window_arcsec=ridges.half_window_arcsec,
-                peak_x_arcsec=ridges.x_arcsec, peak_y_arcsec=ridges.y_arcsec)
+    cuts = ridges.cuts()
     # noise-free: no SNR or precision cut
     quiet = replace(settings, min_snr=0.0) if hasattr(settings, "__dataclass_fields__") \
         else settings

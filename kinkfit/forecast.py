@@ -788,11 +788,7 @@ def traced_kinks(geom, setup, emission, perturbation, *, min_snr: float = 3.0,
     c0, c1 = as_cube(base, vel), as_cube(pert, vel)
     ridges = trace_ridges(c0, geom, settings)
     log.info("validation trace: %d points, rejected %s", len(ridges), ridges.meta["rejected"])
-    cuts = {"x_arcsec": ridges.cut_x_arcsec, "y_arcsec": ridges.cut_y_arcsec,
-            "channel": ridges.channel, "surface": ridges.surface,
-            "dir_x": ridges.dir_x, "dir_y": ridges.dir_y,
-            "template_arcsec": ridges.template_arcsec,
-            "half_window_arcsec": ridges.half_window_arcsec}
+    cuts = ridges.cuts(with_peaks=False)
     r0 = trace_ridges(c0, geom, settings, cuts=cuts)
     r1 = trace_ridges(c1, geom, settings, cuts=cuts)
     i0 = {int(i): j for j, i in enumerate(r0.meta["index"])}

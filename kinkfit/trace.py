@@ -168,6 +168,32 @@ class Ridges:
         """Copy with new positions (everything else unchanged)."""
         return dataclasses.replace(self, x_arcsec=x_arcsec, y_arcsec=y_arcsec)
 
+    def cuts(self, *, with_peaks: bool = True) -> dict:
+        """The points' cuts, for re-tracing another cube at the same places.
+
+        Parameters
+        ----------
+        with_peaks : bool
+            Also pass the traced peak positions (``peak_x_arcsec``,
+            ``peak_y_arcsec``) as starting hints for the peak search.
+
+        Returns
+        -------
+        dict
+            The ``cuts`` argument of :func:`trace_ridges`: cut centres and
+            directions, channel, surface, matched-filter width and half
+            window (arcsec).
+        """
+        out = {"x_arcsec": self.cut_x_arcsec, "y_arcsec": self.cut_y_arcsec,
+               "channel": self.channel, "surface": self.surface,
+               "dir_x": self.dir_x, "dir_y": self.dir_y,
+               "template_arcsec": self.template_arcsec,
+               "half_window_arcsec": self.half_window_arcsec}
+        if with_peaks:
+            out["peak_x_arcsec"] = self.x_arcsec
+            out["peak_y_arcsec"] = self.y_arcsec
+        return out
+
     def as_dict(self) -> dict:
         """Plain dict of the per-point arrays (for HDF5 / tables)."""
         return {k: np.asarray(getattr(self, k)) for k in _FIELDS}
