@@ -250,7 +250,8 @@ def main(argv=None):
                                alpha=float(h["KFALPHA"]), efold=math.inf)
             ridges, bg, dev = read_trace_file(folder / "trace.h5")
             if args.fitted:
-                geom = bg["geometry"]
+                # a fit with the background known has no background result
+                geom = cfg.geometry() if bg is None else bg["geometry"]
                 em = LineEmission(**{k: float(v) for k, v in
                                      dev.meta["bias"]["emission"].items()})
             else:
