@@ -47,8 +47,9 @@ def slope(y, x, w=None):
     return float(np.sum(w * x * y) / np.sum(w * x * x))
 
 
-def scan_mass(resp, truth, model_fn, data, sigma, jitter=0.005):
-    """Mass (M_J) of the chi2 minimum along mass at the true position."""
+def scan_masses(resp, truth, model_fn, data_sets, sigma, jitter=0.005):
+    """Mass (M_J) of the chi2 minimum along mass at the true position, for
+    each data vector in ``data_sets`` (the model along mass is computed once)."""
     masses = np.linspace(0.5, 1.5, 201) * truth.mass_mjup
     n = masses.size
     params = {"mass": masses, "radius": np.full(n, truth.radius_au),
@@ -56,9 +57,13 @@ def scan_mass(resp, truth, model_fn, data, sigma, jitter=0.005):
               "efold": np.full(n, math.inf)}
     dvr, dvp = model_fn(params, resp.node_r_au, resp.node_phi_rad)
     model = resp.offsets_from_wake(np.asarray(dvr), np.asarray(dvp))
-    ok = np.isfinite(data)
-    chi2 = np.nansum(((data - model)[:, ok]) ** 2 / (sigma[ok] ** 2 + jitter ** 2), axis=1)
-    return float(masses[int(np.argmin(chi2))])
+    out = []
+    for data in data_sets:
+        ok = np.isfinite(data)
+        chi2 = np.nansum(((data - model)[:, ok]) ** 2 / (sigma[ok] ** 2 + jitter ** 2),
+                         axis=1)
+        out.append(float(masses[int(np.argmin(chi2))]))
+    return out
 
 
 def main(argv=None):
@@ -76,6 +81,8 @@ def main(argv=None):
     args = ap.parse_args(argv)
     cfg = load_config(args.config)
     lk = cfg.likelihood
+    kw = dict(node_stride=1, back_layer=True, back_stride=lk.back_node_stride,
+              node_oversample=lk.node_subpixels)
     geom, emission = cfg.geometry(), line_emission(cfg)
     records = json.loads(Path(args.state).read_text())["injections"]
     tmp = Path(tempfile.mkdtemp())
@@ -100,8 +107,6 @@ def main(argv=None):
             noisy = read_cube(synth_from_config(cfg, output=tmp / f"n{i}_{seed}.fits",
                                                 truth=truth, seed=seed, overwrite=True))
             ridges = trace_ridges(noisy, geom, cfg.trace)
-            kw = dict(node_stride=1, back_layer=True, back_stride=lk.back_node_stride,
-                      node_oversample=lk.node_subpixels)
             r_noisy = build_ridge_response(noisy, ridges, geom, emission, **kw)
             r_clean = build_ridge_response(clean, ridges, geom, emission, **kw)
             dvr, dvp, _ = pert(r_noisy.node_r_au, r_noisy.node_phi_rad,
@@ -117,8 +122,8 @@ def main(argv=None):
             extra = ""
             if model_fn is not None and w is not None:
                 sig = np.asarray(ridges.sigma_arcsec, float)
-                mn = scan_mass(r_noisy, truth, model_fn, d_noisy, sig) / truth.mass_mjup
-                mc = scan_mass(r_noisy, truth, model_fn, d_clean, sig) / truth.mass_mjup
+                mn, mc = np.array(scan_masses(r_noisy, truth, model_fn, (d_noisy, d_clean),
+                                              sig)) / truth.mass_mjup
                 ratios.append((mn, mc))
                 extra = f" | chi2-min mass / truth: noisy {mn:.3f}, noise-free {mc:.3f}"
             print(f"seed {seed}: {len(ridges)} points | noisy/model {row[0]:.3f} "
