@@ -1,0 +1,168 @@
+"""Is the campaign's low mass in the sampler/posterior or in the data?
+Refit injections whose kinks are drawn from the likelihood itself.
+
+    python bench/probe_likelihood_sbc.py CONFIG STATE.json RUN_FOLDER
+        [--inj 0 4 5 ...] [--replicas 1] [--jitter-truth zero|prior|FLOAT]
+        [--workers 2] [--out DIR] [--max-steps N]
+
+``RUN_FOLDER`` holds the known-background refits of
+``bench/probe_calibration_background.py`` (``inj_NNNN/cube.fits`` and
+``trace.h5``).  For each chosen injection its cube and traced points are
+reused and the forward kink model is built exactly as the known-background
+fit builds it (true geometry, fitted emission profile, the config's nodes);
+then the *data* kinks are replaced by the model kinks of the injection's true
+planet plus Gaussian noise of each point's own sigma (and a jitter: 0 as in
+the campaign's cubes, the injection's prior draw, or a fixed value in arcsec),
+and the posterior is sampled exactly as ``kinkfit fit`` samples it (mode
+search, emcee, same settings).  The data then follow the likelihood by
+construction, so a posterior that is still low in mass points at the
+sampler, the start or the prior volume; one that is centred points at the
+difference between traced and modelled kinks.  Prints per fit the posterior
+median / truth and the normalised bias of mass, radius and azimuth; on
+average with the standard error.  A diagnostic, not a speed benchmark;
+results: docs/calibration.md.  Conditional on the wake model (PHYSICS.md
+section 8).
+"""
+
+import argparse
+import dataclasses
+import json
+import logging
+import sys
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from probe_calibration_background import known_background_text  # noqa: E402
+
+from kinkfit.calibrate import (Posterior, _injection_config, draw_injections,  # noqa: E402
+                               truth_statistics)
+from kinkfit.config import load_config, parse_config  # noqa: E402
+
+NAMES = ("mass", "radius", "azimuth")
+
+
+def sbc_fit(job):
+    """One fit of likelihood-drawn kinks: (index, replica, stats, converged)."""
+    from kinkfit.cube import read_cube
+    from kinkfit.likelihood import KinkLikelihood
+    from kinkfit.pipeline import (_reuse_trace, adapted_forward_response,
+                                  config_forward_response)
+    from kinkfit.results import file_sha256
+    from kinkfit.sampling import find_modes, run_sampler
+    from kinkfit.scenario import wake_disk
+    from kinkfit.wake.emulator import make_fit_model
+
+    inj, run_folder, replica, jitter_truth, out, max_steps = job
+    cfg = _injection_config(parse_config(inj.cfg_text), inj)
+    cube_path = Path(run_folder) / f"inj_{inj.index:04d}" / "cube.fits"
+    cfg = dataclasses.replace(cfg, data=dataclasses.replace(cfg.data, cube=cube_path))
+    cube = read_cube(cube_path)
+    traced = _reuse_trace(cube_path.parent / "trace.h5", cfg, file_sha256(cube_path))
+    if traced is None:
+        raise SystemExit(f"{cube_path.parent / 'trace.h5'}: no matching trace")
+    ridges, _, deviations = traced
+    geometry = cfg.geometry()
+    response, deviations = config_forward_response(cfg, cube, ridges, geometry,
+                                                    deviations)
+    cfg, response, deviations = adapted_forward_response(
+        cfg, cube, ridges, geometry, deviations, planet=None,
+        current=(response, deviations))
+    damping = inj.damping
+    pset = cfg.parameter_set(damping, with_planet=True)
+    model = make_fit_model(wake_disk(cfg, mstar_msun=geometry.mstar_msun), damping)
+    like = KinkLikelihood.from_deviations(deviations, model, pset,
+                                          kind=cfg.likelihood.kind,
+                                          dof=cfg.likelihood.dof, response=response)
+    truths = dict(inj.values)
+    if jitter_truth == "zero":
+        jit = 0.0
+    elif jitter_truth == "prior":
+        jit = float(truths["jitter"])
+    else:
+        jit = float(jitter_truth)
+    theta = pset.pack({n: truths[n] for n in pset.free})
+    clean = like.predict_offset(theta)[0]
+    rng = np.random.default_rng([inj.noise_seed, replica])
+    sigma = np.sqrt(like.data["sigma_arcsec"] ** 2 + jit ** 2)
+    data = dict(like.data)
+    data["offset_arcsec"] = clean + rng.normal(0.0, sigma)
+    like.data = data
+
+    seed = int(inj.sampler_seed) + 7919 * replica
+    settings = dataclasses.replace(cfg.sampler, seed=seed, workers=1, progress=False)
+    if max_steps:
+        settings = dataclasses.replace(settings, max_steps=max_steps)
+    start = find_modes(like.log_prob, pset, np.random.default_rng(seed),
+                       n_tries=4096, n_polish=6)
+    folder = Path(out) / f"inj_{inj.index:04d}_r{replica}"
+    folder.mkdir(parents=True, exist_ok=True)
+    outcome = run_sampler(like.log_prob, pset, settings, folder / "chain.h5",
+                          initial=start, rng_seed=seed, resume=False)
+    post = Posterior(tuple(outcome.param_names), outcome.flat_samples(),
+                     bool(outcome.converged), str(folder / "chain.h5"))
+    stats = truth_statistics(post, {n: truths[n] for n in NAMES}, seed=seed)
+    return inj.index, replica, stats, outcome.converged
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__,
+                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("config")
+    ap.add_argument("state")
+    ap.add_argument("run_folder")
+    ap.add_argument("--inj", type=int, nargs="*", default=None,
+                    help="injection indices (default: every inj_NNNN in RUN_FOLDER)")
+    ap.add_argument("--replicas", type=int, default=1)
+    ap.add_argument("--jitter-truth", default="zero")
+    ap.add_argument("--injections", type=int, default=100)
+    ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--out", default="probe_likelihood_sbc")
+    ap.add_argument("--max-steps", type=int, default=0,
+                    help="override sampler.max_steps (0: the config's)")
+    args = ap.parse_args(argv)
+    logging.basicConfig(level=logging.WARNING, format="%(asctime)s %(message)s")
+
+    cfg = load_config(args.config)
+    done = json.loads(Path(args.state).read_text())["injections"]
+    run = Path(args.run_folder)
+    wanted = (set(args.inj) if args.inj is not None else
+              {int(p.name[4:]) for p in run.glob("inj_*") if (p / "trace.h5").exists()})
+    text = known_background_text(cfg.text)
+    chosen = [dataclasses.replace(inj, cfg_path=None, cfg_text=text)
+              for inj in draw_injections(cfg, args.injections, seed=args.seed)
+              if inj.index in wanted]
+    for inj in chosen:   # same draws as the campaign
+        assert abs(done[str(inj.index)]["truths"]["mass"] - inj.truths["mass"]) < 1e-9
+    jobs = [(inj, str(run), k, args.jitter_truth, args.out,
+             args.max_steps)
+            for k in range(args.replicas) for inj in chosen]
+    print(f"{len(jobs)} fits: injections {[i.index for i in chosen]} x "
+          f"{args.replicas} replicas, jitter truth {args.jitter_truth}", flush=True)
+    rows = []
+    with ProcessPoolExecutor(max_workers=args.workers) as pool:
+        for index, replica, stats, converged in pool.map(sbc_fit, jobs):
+            m = stats["mass"]
+            rows.append([m["median"] / m["truth"]] + [stats[n]["bias"] for n in NAMES]
+                        + [stats[n]["quantile"] for n in NAMES])
+            print(f"inj {index:3d} r{replica} truth {m['truth']:.2f} M_J: mass "
+                  f"median/truth {rows[-1][0]:.3f} z {m['bias']:+.2f} | radius z "
+                  f"{stats['radius']['bias']:+.2f} | azimuth z "
+                  f"{stats['azimuth']['bias']:+.2f} (converged {converged})", flush=True)
+    a = np.array(rows)
+    n = len(a)
+    sem = a.std(axis=0, ddof=1) / np.sqrt(n) if n > 1 else np.full(a.shape[1], np.nan)
+    q = a[:, 4:]
+    in68 = np.mean((q > 0.16) & (q < 0.84), axis=0)
+    print(f"mean over {n}: mass median/truth {a[:, 0].mean():.3f} +- {sem[0]:.3f}; z "
+          + ", ".join(f"{nm} {a[:, 1 + j].mean():+.2f} +- {sem[1 + j]:.2f}"
+                      for j, nm in enumerate(NAMES))
+          + "; 68% coverage " + ", ".join(f"{nm} {in68[j]:.2f}"
+                                          for j, nm in enumerate(NAMES)))
+
+
+if __name__ == "__main__":
+    main()
