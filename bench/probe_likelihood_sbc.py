@@ -2,8 +2,8 @@
 Refit injections whose kinks are drawn from the likelihood itself.
 
     python bench/probe_likelihood_sbc.py CONFIG STATE.json RUN_FOLDER
-        [--inj 0 4 5 ...] [--replicas 1] [--jitter-truth zero|prior|FLOAT]
-        [--workers 2] [--out DIR] [--max-steps N]
+        [--inj 0 4 5 ...] [--replicas 1] [--first-replica 0] [--jitter-truth zero|prior|FLOAT]
+        [--prior-truth] [--workers 2] [--out DIR] [--max-steps N]
 
 ``RUN_FOLDER`` holds the known-background refits of
 ``bench/probe_calibration_background.py`` (``inj_NNNN/cube.fits`` and
@@ -44,18 +44,17 @@ from kinkfit.config import load_config, parse_config  # noqa: E402
 NAMES = ("mass", "radius", "azimuth")
 
 
-def sbc_fit(job):
-    """One fit of likelihood-drawn kinks: (index, replica, stats, converged)."""
+def known_background_likelihood(inj, run_folder):
+    """The forward-model likelihood of one injection as its known-background
+    fit builds it: ``(like, pset, cfg)`` (data: the traced kinks)."""
     from kinkfit.cube import read_cube
     from kinkfit.likelihood import KinkLikelihood
     from kinkfit.pipeline import (_reuse_trace, adapted_forward_response,
                                   config_forward_response)
     from kinkfit.results import file_sha256
-    from kinkfit.sampling import find_modes, run_sampler
     from kinkfit.scenario import wake_disk
     from kinkfit.wake.emulator import make_fit_model
 
-    inj, run_folder, replica, jitter_truth, out, max_steps = job
     cfg = _injection_config(parse_config(inj.cfg_text), inj)
     cube_path = Path(run_folder) / f"inj_{inj.index:04d}" / "cube.fits"
     cfg = dataclasses.replace(cfg, data=dataclasses.replace(cfg.data, cube=cube_path))
@@ -70,13 +69,23 @@ def sbc_fit(job):
     cfg, response, deviations = adapted_forward_response(
         cfg, cube, ridges, geometry, deviations, planet=None,
         current=(response, deviations))
-    damping = inj.damping
-    pset = cfg.parameter_set(damping, with_planet=True)
-    model = make_fit_model(wake_disk(cfg, mstar_msun=geometry.mstar_msun), damping)
+    pset = cfg.parameter_set(inj.damping, with_planet=True)
+    model = make_fit_model(wake_disk(cfg, mstar_msun=geometry.mstar_msun), inj.damping)
     like = KinkLikelihood.from_deviations(deviations, model, pset,
                                           kind=cfg.likelihood.kind,
                                           dof=cfg.likelihood.dof, response=response)
+    return like, pset, cfg
+
+
+def replace_with_model_draw(like, pset, inj, replica, jitter_truth,
+                            prior_truth=False):
+    """Replace the likelihood's data kinks by the model kinks of the
+    injection's truth (or, with ``prior_truth``, of a planet drawn from the
+    prior) plus Gaussian noise (sigma_i, jitter); returns the truths."""
     truths = dict(inj.values)
+    if prior_truth:
+        draw = pset.sample_prior(np.random.default_rng([inj.noise_seed, replica, 1]), 1)
+        truths.update({n: float(v) for n, v in zip(pset.free, draw[0])})
     if jitter_truth == "zero":
         jit = 0.0
     elif jitter_truth == "prior":
@@ -90,6 +99,17 @@ def sbc_fit(job):
     data = dict(like.data)
     data["offset_arcsec"] = clean + rng.normal(0.0, sigma)
     like.data = data
+    return truths
+
+
+def sbc_fit(job):
+    """One fit of likelihood-drawn kinks: (index, replica, stats, converged)."""
+    from kinkfit.sampling import find_modes, run_sampler
+
+    inj, run_folder, replica, jitter_truth, out, max_steps, prior_truth = job
+    like, pset, cfg = known_background_likelihood(inj, run_folder)
+    truths = replace_with_model_draw(like, pset, inj, replica, jitter_truth,
+                                     prior_truth)
 
     seed = int(inj.sampler_seed) + 7919 * replica
     settings = dataclasses.replace(cfg.sampler, seed=seed, workers=1, progress=False)
@@ -116,6 +136,10 @@ def main(argv=None):
     ap.add_argument("--inj", type=int, nargs="*", default=None,
                     help="injection indices (default: every inj_NNNN in RUN_FOLDER)")
     ap.add_argument("--replicas", type=int, default=1)
+    ap.add_argument("--first-replica", type=int, default=0)
+    ap.add_argument("--prior-truth", action="store_true",
+                    help="a planet drawn from the prior for each fit (a full "
+                         "simulation-based calibration on the injections' points)")
     ap.add_argument("--jitter-truth", default="zero")
     ap.add_argument("--injections", type=int, default=100)
     ap.add_argument("--seed", type=int, default=0)
@@ -138,9 +162,11 @@ def main(argv=None):
     for inj in chosen:   # same draws as the campaign
         assert abs(done[str(inj.index)]["truths"]["mass"] - inj.truths["mass"]) < 1e-9
     jobs = [(inj, str(run), k, args.jitter_truth, args.out,
-             args.max_steps)
-            for k in range(args.replicas) for inj in chosen]
-    print(f"{len(jobs)} fits: injections {[i.index for i in chosen]} x "
+             args.max_steps, args.prior_truth)
+            for k in range(args.first_replica, args.first_replica + args.replicas)
+            for inj in chosen]
+    kind = " (planets from the prior)" if args.prior_truth else ""
+    print(f"{len(jobs)} fits{kind}: injections {[i.index for i in chosen]} x "
           f"{args.replicas} replicas, jitter truth {args.jitter_truth}", flush=True)
     rows = []
     with ProcessPoolExecutor(max_workers=args.workers) as pool:
@@ -157,11 +183,18 @@ def main(argv=None):
     sem = a.std(axis=0, ddof=1) / np.sqrt(n) if n > 1 else np.full(a.shape[1], np.nan)
     q = a[:, 4:]
     in68 = np.mean((q > 0.16) & (q < 0.84), axis=0)
+    in95 = np.mean((q > 0.025) & (q < 0.975), axis=0)
+    spread = a[:, 1:4].std(axis=0, ddof=1) if n > 1 else np.full(3, np.nan)
     print(f"mean over {n}: mass median/truth {a[:, 0].mean():.3f} +- {sem[0]:.3f}; z "
           + ", ".join(f"{nm} {a[:, 1 + j].mean():+.2f} +- {sem[1 + j]:.2f}"
                       for j, nm in enumerate(NAMES))
-          + "; 68% coverage " + ", ".join(f"{nm} {in68[j]:.2f}"
-                                          for j, nm in enumerate(NAMES)))
+          + "; 68% / 95% coverage " + ", ".join(f"{nm} {in68[j]:.2f} / {in95[j]:.2f}"
+                                                for j, nm in enumerate(NAMES))
+          + "; z spread " + ", ".join(f"{nm} {spread[j]:.2f}"
+                                      for j, nm in enumerate(NAMES)))
+    Path(args.out).mkdir(parents=True, exist_ok=True)
+    (Path(args.out) / f"rows_{args.first_replica}_{args.jitter_truth}"
+     f"{'_prior' if args.prior_truth else ''}.json").write_text(json.dumps(rows))
 
 
 if __name__ == "__main__":

@@ -1,0 +1,115 @@
+"""Does emcee sample the posterior the likelihood defines?  The marginal mass
+posterior of one fit integrated on a grid, against the fit's chain.
+
+    python bench/probe_posterior_grid.py CONFIG STATE.json RUN_FOLDER --inj N
+        [--replica R | --traced] [--chain CHAIN.h5] [--jitter-mas 1.5]
+        [--n 48]
+
+Builds the likelihood of injection ``N`` as ``bench/probe_likelihood_sbc.py``
+does (known background, the config's nodes); its data are the traced kinks
+(``--traced``) or the same likelihood draw as that probe's replica ``R``.
+The log-posterior (prior included) is evaluated on a grid in log mass
+(0.55-1.6 x truth), radius (truth +- 16 au) and azimuth (truth +- 24 deg)
+at a fixed jitter (the chains put it at 1-2 mas, uncorrelated with the mass);
+the marginal posterior of the mass is the sum over radius and azimuth times
+the volume element ``m dlog m``.  Printed: the grid's median, 16/84%
+percentiles and MAP of the mass, the mass of the profile-likelihood maximum
+(max over radius and azimuth, prior excluded), the share of the grid's
+posterior on its edges (must be small for the numbers to mean anything),
+and with ``--chain`` the same percentiles of the chain (after the
+sampler's own burn-in: a third of the steps).  A diagnostic of the sampler,
+not a speed benchmark; results: docs/calibration.md.
+"""
+
+import argparse
+import dataclasses
+import json
+import sys
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from probe_calibration_background import known_background_text  # noqa: E402
+from probe_likelihood_sbc import (known_background_likelihood,  # noqa: E402
+                                  replace_with_model_draw)
+
+from kinkfit.calibrate import draw_injections  # noqa: E402
+from kinkfit.config import load_config  # noqa: E402
+
+
+def weighted_percentiles(x, w, q):
+    """Percentiles ``q`` (0-100) of values ``x`` with weights ``w`` (x sorted)."""
+    c = np.cumsum(w)
+    c = c / c[-1]
+    return np.interp(np.asarray(q) / 100.0, c, x)
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__,
+                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("config")
+    ap.add_argument("state")
+    ap.add_argument("run_folder")
+    ap.add_argument("--inj", type=int, required=True)
+    ap.add_argument("--replica", type=int, default=0)
+    ap.add_argument("--traced", action="store_true")
+    ap.add_argument("--jitter-truth", default="zero")
+    ap.add_argument("--chain", default=None)
+    ap.add_argument("--jitter-mas", type=float, default=1.5)
+    ap.add_argument("--n", type=int, default=48)
+    ap.add_argument("--injections", type=int, default=100)
+    ap.add_argument("--seed", type=int, default=0)
+    args = ap.parse_args(argv)
+
+    cfg = load_config(args.config)
+    done = json.loads(Path(args.state).read_text())["injections"]
+    text = known_background_text(cfg.text)
+    inj = [dataclasses.replace(i, cfg_path=None, cfg_text=text)
+           for i in draw_injections(cfg, args.injections, seed=args.seed)
+           if i.index == args.inj][0]
+    assert abs(done[str(inj.index)]["truths"]["mass"] - inj.truths["mass"]) < 1e-9
+    like, pset, _ = known_background_likelihood(inj, args.run_folder)
+    truths = dict(inj.values)
+    if not args.traced:
+        replace_with_model_draw(like, pset, inj, args.replica, args.jitter_truth)
+
+    n = args.n
+    logm = np.log(truths["mass"]) + np.linspace(np.log(0.55), np.log(1.6), n)
+    rad = truths["radius"] + np.linspace(-16, 16, n)
+    azi = truths["azimuth"] + np.linspace(-24, 24, n)
+    M, R, A = np.meshgrid(np.exp(logm), rad, azi, indexing="ij")
+    vals = {"mass": M.ravel(), "radius": R.ravel(), "azimuth": A.ravel(),
+            "jitter": np.full(M.size, args.jitter_mas / 1000.0)}
+    theta = pset.pack(vals)
+    lp = np.concatenate([like.log_prob(theta[k:k + 4096])
+                         for k in range(0, len(theta), 4096)]).reshape(M.shape)
+    lprior = pset.log_prior(theta).reshape(M.shape)
+    lpost = lp + np.log(M)                      # volume element m dlog m
+    w = np.exp(lpost - lpost[np.isfinite(lpost)].max())
+    w[~np.isfinite(w)] = 0.0
+    marg = w.sum(axis=(1, 2))
+    edge = (w[0].sum() + w[-1].sum() + w[:, 0].sum() + w[:, -1].sum()
+            + w[:, :, 0].sum() + w[:, :, -1].sum()) / w.sum()
+    m = np.exp(logm)
+    p16, p50, p84 = weighted_percentiles(m, marg, [16, 50, 84])
+    profile = np.max(np.where(np.isfinite(lp - lprior), lp - lprior, -np.inf), axis=(1, 2))
+    t = truths["mass"]
+    print(f"inj {inj.index} {'traced' if args.traced else f'replica {args.replica}'}: "
+          f"truth {t:.3f} M_J; grid {n}^3, jitter {args.jitter_mas} mas, edge share "
+          f"{edge:.1e}")
+    print(f"  grid marginal: median/truth {p50 / t:.3f} [{p16 / t:.3f}, {p84 / t:.3f}], "
+          f"MAP/truth {m[np.argmax(marg)] / t:.3f}; profile-likelihood max "
+          f"{m[np.argmax(profile)] / t:.3f}; quantile of truth "
+          f"{np.interp(np.log(t), logm, np.cumsum(marg) / marg.sum()):.2f}")
+    if args.chain:
+        from kinkfit.sampling import read_checkpoint
+        chain, _, it = read_checkpoint(args.chain)
+        s = chain[it // 3:].reshape(-1, chain.shape[-1])[:, pset.free.index("mass")]
+        q16, q50, q84 = np.percentile(s, [16, 50, 84])
+        print(f"  chain ({it} steps): median/truth {q50 / t:.3f} [{q16 / t:.3f}, "
+              f"{q84 / t:.3f}]; quantile of truth {np.mean(s < t):.2f}")
+
+
+if __name__ == "__main__":
+    main()
