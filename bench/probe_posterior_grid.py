@@ -3,13 +3,13 @@ posterior of one fit integrated on a grid, against the fit's chain.
 
     python bench/probe_posterior_grid.py CONFIG STATE.json RUN_FOLDER --inj N
         [--replica R | --traced] [--chain CHAIN.h5] [--jitter-mas 1.5]
-        [--n 48]
+        [--n 48] [--mass-range 0.55 1.6] [--radius-half 16] [--azimuth-half 24]
 
 Builds the likelihood of injection ``N`` as ``bench/probe_likelihood_sbc.py``
 does (known background, the config's nodes); its data are the traced kinks
 (``--traced``) or the same likelihood draw as that probe's replica ``R``.
 The log-posterior (prior included) is evaluated on a grid in log mass
-(0.55-1.6 x truth), radius (truth +- 16 au) and azimuth (truth +- 24 deg)
+(default 0.55-1.6 x truth), radius (truth +- 16 au) and azimuth (+- 24 deg)
 at a fixed jitter (the chains put it at 1-2 mas, uncorrelated with the mass);
 the marginal posterior of the mass is the sum over radius and azimuth times
 the volume element ``m dlog m``.  Printed: the grid's median, 16/84%
@@ -58,6 +58,10 @@ def main(argv=None):
     ap.add_argument("--chain", default=None)
     ap.add_argument("--jitter-mas", type=float, default=1.5)
     ap.add_argument("--n", type=int, default=48)
+    ap.add_argument("--mass-range", type=float, nargs=2, default=(0.55, 1.6),
+                    help="grid in mass, as factors of the truth")
+    ap.add_argument("--radius-half", type=float, default=16.0, help="au")
+    ap.add_argument("--azimuth-half", type=float, default=24.0, help="deg")
     ap.add_argument("--injections", type=int, default=100)
     ap.add_argument("--seed", type=int, default=0)
     args = ap.parse_args(argv)
@@ -75,9 +79,9 @@ def main(argv=None):
         replace_with_model_draw(like, pset, inj, args.replica, args.jitter_truth)
 
     n = args.n
-    logm = np.log(truths["mass"]) + np.linspace(np.log(0.55), np.log(1.6), n)
-    rad = truths["radius"] + np.linspace(-16, 16, n)
-    azi = truths["azimuth"] + np.linspace(-24, 24, n)
+    logm = np.log(truths["mass"]) + np.linspace(*np.log(args.mass_range), n)
+    rad = truths["radius"] + np.linspace(-args.radius_half, args.radius_half, n)
+    azi = truths["azimuth"] + np.linspace(-args.azimuth_half, args.azimuth_half, n)
     M, R, A = np.meshgrid(np.exp(logm), rad, azi, indexing="ij")
     vals = {"mass": M.ravel(), "radius": R.ravel(), "azimuth": A.ravel(),
             "jitter": np.full(M.size, args.jitter_mas / 1000.0)}
