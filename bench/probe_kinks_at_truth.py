@@ -13,38 +13,23 @@ weighted least-squares scale ``a`` of the model kinks (data ~ a * model) with
 its formal error.  A diagnostic; results: docs/calibration.md.
 """
 
-import argparse
-import dataclasses
 import sys
 from pathlib import Path
 
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from probe_calibration_background import known_background_text  # noqa: E402
-from probe_likelihood_sbc import known_background_likelihood  # noqa: E402
-
-from kinkfit.calibrate import draw_injections  # noqa: E402
-from kinkfit.config import load_config  # noqa: E402
+from probe_likelihood_sbc import (campaign_parser,  # noqa: E402
+                                  known_background_injections,
+                                  known_background_likelihood)
 
 
 def main(argv=None):
-    ap = argparse.ArgumentParser(description=__doc__,
-                                 formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("config")
-    ap.add_argument("state")
-    ap.add_argument("run_folder")
+    ap = campaign_parser(__doc__)
     ap.add_argument("--inj", type=int, nargs="*", default=[0, 4, 5, 6, 7, 8, 9, 10, 12, 14])
-    ap.add_argument("--injections", type=int, default=100)
-    ap.add_argument("--seed", type=int, default=0)
     args = ap.parse_args(argv)
-    cfg = load_config(args.config)
-    text = known_background_text(cfg.text)
     scales = []
-    for inj in draw_injections(cfg, args.injections, seed=args.seed):
-        if inj.index not in args.inj:
-            continue
-        inj = dataclasses.replace(inj, cfg_path=None, cfg_text=text)
+    for inj in known_background_injections(args, set(args.inj)):
         like, pset, _ = known_background_likelihood(inj, args.run_folder)
         pred = like.predict_offset(pset.pack({n: inj.values[n] for n in pset.free}))[0]
         d, s = like.data["offset_arcsec"], like.data["sigma_arcsec"]

@@ -127,12 +127,36 @@ def sbc_fit(job):
     return inj.index, replica, stats, outcome.converged
 
 
-def main(argv=None):
-    ap = argparse.ArgumentParser(description=__doc__,
+def campaign_parser(doc):
+    """Parser with ``CONFIG STATE RUN_FOLDER`` and the campaign's
+    ``--injections`` / ``--seed`` (shared by the known-background probes)."""
+    ap = argparse.ArgumentParser(description=doc,
                                  formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("config")
     ap.add_argument("state")
     ap.add_argument("run_folder")
+    ap.add_argument("--injections", type=int, default=100)
+    ap.add_argument("--seed", type=int, default=0)
+    return ap
+
+
+def known_background_injections(args, wanted):
+    """The campaign's injections with index in ``wanted``, each with the
+    known-background config text (same draws as the campaign, checked
+    against the state file)."""
+    cfg = load_config(args.config)
+    done = json.loads(Path(args.state).read_text())["injections"]
+    text = known_background_text(cfg.text)
+    chosen = [dataclasses.replace(inj, cfg_path=None, cfg_text=text)
+              for inj in draw_injections(cfg, args.injections, seed=args.seed)
+              if inj.index in wanted]
+    for inj in chosen:
+        assert abs(done[str(inj.index)]["truths"]["mass"] - inj.truths["mass"]) < 1e-9
+    return chosen
+
+
+def main(argv=None):
+    ap = campaign_parser(__doc__)
     ap.add_argument("--inj", type=int, nargs="*", default=None,
                     help="injection indices (default: every inj_NNNN in RUN_FOLDER)")
     ap.add_argument("--replicas", type=int, default=1)
@@ -141,8 +165,6 @@ def main(argv=None):
                     help="a planet drawn from the prior for each fit (a full "
                          "simulation-based calibration on the injections' points)")
     ap.add_argument("--jitter-truth", default="zero")
-    ap.add_argument("--injections", type=int, default=100)
-    ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--out", default="probe_likelihood_sbc")
     ap.add_argument("--max-steps", type=int, default=0,
@@ -150,17 +172,10 @@ def main(argv=None):
     args = ap.parse_args(argv)
     logging.basicConfig(level=logging.WARNING, format="%(asctime)s %(message)s")
 
-    cfg = load_config(args.config)
-    done = json.loads(Path(args.state).read_text())["injections"]
     run = Path(args.run_folder)
     wanted = (set(args.inj) if args.inj is not None else
               {int(p.name[4:]) for p in run.glob("inj_*") if (p / "trace.h5").exists()})
-    text = known_background_text(cfg.text)
-    chosen = [dataclasses.replace(inj, cfg_path=None, cfg_text=text)
-              for inj in draw_injections(cfg, args.injections, seed=args.seed)
-              if inj.index in wanted]
-    for inj in chosen:   # same draws as the campaign
-        assert abs(done[str(inj.index)]["truths"]["mass"] - inj.truths["mass"]) < 1e-9
+    chosen = known_background_injections(args, wanted)
     jobs = [(inj, str(run), k, args.jitter_truth, args.out,
              args.max_steps, args.prior_truth)
             for k in range(args.first_replica, args.first_replica + args.replicas)

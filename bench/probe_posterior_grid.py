@@ -21,21 +21,17 @@ sampler's own burn-in: a third of the steps).  A diagnostic of the sampler,
 not a speed benchmark; results: docs/calibration.md.
 """
 
-import argparse
-import dataclasses
-import json
 import sys
 from pathlib import Path
 
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from probe_calibration_background import known_background_text  # noqa: E402
-from probe_likelihood_sbc import (known_background_likelihood,  # noqa: E402
+from probe_likelihood_sbc import (campaign_parser,  # noqa: E402
+                                  known_background_injections,
+                                  known_background_likelihood,
                                   replace_with_model_draw)
 
-from kinkfit.calibrate import draw_injections  # noqa: E402
-from kinkfit.config import load_config  # noqa: E402
 
 
 def weighted_percentiles(x, w, q):
@@ -46,11 +42,7 @@ def weighted_percentiles(x, w, q):
 
 
 def main(argv=None):
-    ap = argparse.ArgumentParser(description=__doc__,
-                                 formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("config")
-    ap.add_argument("state")
-    ap.add_argument("run_folder")
+    ap = campaign_parser(__doc__)
     ap.add_argument("--inj", type=int, required=True)
     ap.add_argument("--replica", type=int, default=0)
     ap.add_argument("--traced", action="store_true")
@@ -62,17 +54,9 @@ def main(argv=None):
                     help="grid in mass, as factors of the truth")
     ap.add_argument("--radius-half", type=float, default=16.0, help="au")
     ap.add_argument("--azimuth-half", type=float, default=24.0, help="deg")
-    ap.add_argument("--injections", type=int, default=100)
-    ap.add_argument("--seed", type=int, default=0)
     args = ap.parse_args(argv)
 
-    cfg = load_config(args.config)
-    done = json.loads(Path(args.state).read_text())["injections"]
-    text = known_background_text(cfg.text)
-    inj = [dataclasses.replace(i, cfg_path=None, cfg_text=text)
-           for i in draw_injections(cfg, args.injections, seed=args.seed)
-           if i.index == args.inj][0]
-    assert abs(done[str(inj.index)]["truths"]["mass"] - inj.truths["mass"]) < 1e-9
+    inj = known_background_injections(args, {args.inj})[0]
     like, pset, _ = known_background_likelihood(inj, args.run_folder)
     truths = dict(inj.values)
     if not args.traced:
