@@ -2,7 +2,7 @@
 posterior of one fit integrated on a grid, against the fit's chain.
 
     python bench/probe_posterior_grid.py CONFIG STATE.json RUN_FOLDER --inj N
-        [--replica R | --traced] [--chain CHAIN.h5] [--jitter-mas 1.5]
+        [--replica R [--prior-truth] | --traced] [--chain CHAIN.h5] [--jitter-mas 1.5]
         [--n 48] [--mass-range 0.55 1.6] [--radius-half 16] [--azimuth-half 24]
 
 Builds the likelihood of injection ``N`` as ``bench/probe_likelihood_sbc.py``
@@ -47,6 +47,9 @@ def main(argv=None):
     ap.add_argument("--replica", type=int, default=0)
     ap.add_argument("--traced", action="store_true")
     ap.add_argument("--jitter-truth", default="zero")
+    ap.add_argument("--prior-truth", action="store_true",
+                    help="the planet drawn from the prior, as probe_likelihood_sbc.py "
+                         "--prior-truth draws it for this replica")
     ap.add_argument("--chain", default=None)
     ap.add_argument("--jitter-mas", type=float, default=1.5)
     ap.add_argument("--n", type=int, default=48)
@@ -60,7 +63,8 @@ def main(argv=None):
     like, pset, _ = known_background_likelihood(inj, args.run_folder)
     truths = dict(inj.values)
     if not args.traced:
-        replace_with_model_draw(like, pset, inj, args.replica, args.jitter_truth)
+        truths = replace_with_model_draw(like, pset, inj, args.replica, args.jitter_truth,
+                                         prior_truth=args.prior_truth)
 
     n = args.n
     logm = np.log(truths["mass"]) + np.linspace(*np.log(args.mass_range), n)
@@ -84,7 +88,8 @@ def main(argv=None):
     profile = np.max(np.where(np.isfinite(lp - lprior), lp - lprior, -np.inf), axis=(1, 2))
     t = truths["mass"]
     print(f"inj {inj.index} {'traced' if args.traced else f'replica {args.replica}'}: "
-          f"truth {t:.3f} M_J; grid {n}^3, jitter {args.jitter_mas} mas, edge share "
+          f"truth {t:.3f} M_J, {truths['radius']:.1f} au, {truths['azimuth']:.1f} deg, "
+          f"jitter {truths['jitter'] * 1e3:.2f} mas; grid {n}^3, jitter {args.jitter_mas} mas, edge share "
           f"{edge:.1e}")
     print(f"  grid marginal: median/truth {p50 / t:.3f} [{p16 / t:.3f}, {p84 / t:.3f}], "
           f"MAP/truth {m[np.argmax(marg)] / t:.3f}; profile-likelihood max "
