@@ -34,30 +34,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from probe_calibration_background import known_background_text  # noqa: E402
+from probe_likelihood_sbc import traced_likelihood  # noqa: E402
 
 from kinkfit.config import load_config, parse_config  # noqa: E402
-
-
-def _likelihood(cfg, cube, traced):
-    """Known-background forward likelihood of one traced cube."""
-    from kinkfit.likelihood import KinkLikelihood
-    from kinkfit.pipeline import adapted_forward_response, config_forward_response
-    from kinkfit.scenario import wake_disk
-    from kinkfit.wake.emulator import make_fit_model
-
-    ridges, _, deviations = traced
-    geometry = cfg.geometry()
-    damping = cfg.wake.damping[0]
-    response, deviations = config_forward_response(cfg, cube, ridges, geometry, deviations)
-    cfg, response, deviations = adapted_forward_response(
-        cfg, cube, ridges, geometry, deviations, planet=None,
-        current=(response, deviations))
-    pset = cfg.parameter_set(damping, with_planet=True)
-    model = make_fit_model(wake_disk(cfg, mstar_msun=geometry.mstar_msun), damping)
-    like = KinkLikelihood.from_deviations(deviations, model, pset,
-                                          kind=cfg.likelihood.kind,
-                                          dof=cfg.likelihood.dof, response=response)
-    return like, pset
 
 
 def one_cube(job):
@@ -77,7 +56,7 @@ def one_cube(job):
     synth_from_config(cfg, output=path, overwrite=True, truth=truth, seed=1000 + seed,
                       noise=noise)
     cube = read_cube(path)
-    like, pset = _likelihood(cfg, cube, run_trace(cfg, cube=cube))
+    like, pset = traced_likelihood(cfg, cube, run_trace(cfg, cube=cube), damping)
     d, s = like.data["offset_arcsec"], like.data["sigma_arcsec"]
 
     def pack(m):

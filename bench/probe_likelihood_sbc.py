@@ -44,16 +44,36 @@ from kinkfit.config import load_config, parse_config  # noqa: E402
 NAMES = ("mass", "radius", "azimuth")
 
 
+def traced_likelihood(cfg, cube, traced, damping):
+    """The known-background forward-model likelihood of one traced cube
+    (true geometry, fitted emission profile, the config's nodes): ``(like,
+    pset)``; ``traced`` is ``(ridges, background_fit, deviations)``."""
+    from kinkfit.likelihood import KinkLikelihood
+    from kinkfit.pipeline import adapted_forward_response, config_forward_response
+    from kinkfit.scenario import wake_disk
+    from kinkfit.wake.emulator import make_fit_model
+
+    ridges, _, deviations = traced
+    geometry = cfg.geometry()
+    response, deviations = config_forward_response(cfg, cube, ridges, geometry,
+                                                    deviations)
+    cfg, response, deviations = adapted_forward_response(
+        cfg, cube, ridges, geometry, deviations, planet=None,
+        current=(response, deviations))
+    pset = cfg.parameter_set(damping, with_planet=True)
+    model = make_fit_model(wake_disk(cfg, mstar_msun=geometry.mstar_msun), damping)
+    like = KinkLikelihood.from_deviations(deviations, model, pset,
+                                          kind=cfg.likelihood.kind,
+                                          dof=cfg.likelihood.dof, response=response)
+    return like, pset
+
+
 def known_background_likelihood(inj, run_folder):
     """The forward-model likelihood of one injection as its known-background
     fit builds it: ``(like, pset, cfg)`` (data: the traced kinks)."""
     from kinkfit.cube import read_cube
-    from kinkfit.likelihood import KinkLikelihood
-    from kinkfit.pipeline import (_reuse_trace, adapted_forward_response,
-                                  config_forward_response)
+    from kinkfit.pipeline import _reuse_trace
     from kinkfit.results import file_sha256
-    from kinkfit.scenario import wake_disk
-    from kinkfit.wake.emulator import make_fit_model
 
     cfg = _injection_config(parse_config(inj.cfg_text), inj)
     cube_path = Path(run_folder) / f"inj_{inj.index:04d}" / "cube.fits"
@@ -62,18 +82,7 @@ def known_background_likelihood(inj, run_folder):
     traced = _reuse_trace(cube_path.parent / "trace.h5", cfg, file_sha256(cube_path))
     if traced is None:
         raise SystemExit(f"{cube_path.parent / 'trace.h5'}: no matching trace")
-    ridges, _, deviations = traced
-    geometry = cfg.geometry()
-    response, deviations = config_forward_response(cfg, cube, ridges, geometry,
-                                                    deviations)
-    cfg, response, deviations = adapted_forward_response(
-        cfg, cube, ridges, geometry, deviations, planet=None,
-        current=(response, deviations))
-    pset = cfg.parameter_set(inj.damping, with_planet=True)
-    model = make_fit_model(wake_disk(cfg, mstar_msun=geometry.mstar_msun), inj.damping)
-    like = KinkLikelihood.from_deviations(deviations, model, pset,
-                                          kind=cfg.likelihood.kind,
-                                          dof=cfg.likelihood.dof, response=response)
+    like, pset = traced_likelihood(cfg, cube, traced, inj.damping)
     return like, pset, cfg
 
 
